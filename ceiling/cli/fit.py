@@ -1,0 +1,27 @@
+"""``ceiling fit CONFIG --out DIR``: fit the upper-boundary models of a config."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import click
+
+from ..config import load_config
+from ..fitting import fit_to_folder
+from .main import handle_errors
+from .options import config_arg, out_opt, overwrite_opt
+
+
+@click.command("fit")
+@config_arg
+@out_opt
+@overwrite_opt
+@click.pass_context
+@handle_errors
+def fit(ctx: click.Context, config: Path, out: Path, overwrite: bool) -> None:
+    """Fit per-factor ceilings and write the model file, diagnostics and figures."""
+    cfg = load_config(config)
+    run, written = fit_to_folder(cfg, out, overwrite=overwrite)
+    if not ctx.obj.get("quiet"):
+        click.echo(run.summary())
+        click.echo(f"\nwrote {len(written)} files to {out} (model: {out / 'model.json'})")

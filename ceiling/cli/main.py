@@ -1,0 +1,73 @@
+"""The ``ceiling`` command line: a thin layer over the Python API.
+
+Each command parses its options, calls the API and prints. A user mistake (any
+:class:`~ceiling.errors.CeilingError`) is printed as one ``error:`` line and exits with code 2;
+warnings are printed as one ``warning:`` line each.
+"""
+
+from __future__ import annotations
+
+import logging
+import sys
+import warnings
+from collections.abc import Callable
+from functools import wraps
+from typing import Any
+
+import click
+
+from .. import __version__
+from ..errors import CeilingError, CeilingWarning
+
+EXIT_BAD_INPUT = 2
+
+
+def _show_warning(message: Any, category: type[Warning], *args: Any, **kwargs: Any) -> None:
+    if issubclass(category, CeilingWarning):
+        click.echo(f"warning: {' '.join(str(message).split())}", err=True)
+
+
+def handle_errors(fn: Callable[..., Any]) -> Callable[..., Any]:
+    """Turn the tool's own errors into one line on stderr and exit code 2."""
+
+    @wraps(fn)
+    def wrapper(*args: Any, **kwargs: Any) -> Any:
+        try:
+            return fn(*args, **kwargs)
+        except CeilingError as exc:
+            click.echo(f"error: {exc}", err=True)
+            sys.exit(EXIT_BAD_INPUT)
+
+    return wrapper
+
+
+@click.group(context_settings={"help_option_names": ["-h", "--help"]})
+@click.version_option(__version__, prog_name="ceiling")
+@click.option("-v", "--verbose", count=True, help="More log output (repeat for debug).")
+@click.option("-q", "--quiet", is_flag=True, help="Only errors.")
+@click.pass_context
+def cli(ctx: click.Context, verbose: int, quiet: bool) -> None:
+    """Ceilings of species abundance under climate scenarios (potential upper limits, not forecasts)."""
+    level = logging.ERROR if quiet else (logging.DEBUG if verbose > 1 else logging.INFO if verbose else logging.WARNING)
+    logging.basicConfig(level=level, format="%(levelname)s: %(message)s")
+    ctx.obj = {"quiet": quiet}
+    warnings.showwarning = _show_warning
+
+
+def _register() -> None:
+    from . import demo as demo_cmd
+    from . import fit as fit_cmd
+
+    cli.add_command(fit_cmd.fit)
+    cli.add_command(demo_cmd.demo)
+
+
+_register()
+
+
+def main(argv: list[str] | None = None) -> None:
+    cli.main(args=argv, prog_name="ceiling")
+
+
+if __name__ == "__main__":  # pragma: no cover
+    main()

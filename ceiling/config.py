@@ -1,0 +1,204 @@
+"""Run configuration: a TOML file read with the standard library, validated by pydantic.
+
+Relative paths in a config are resolved against the folder that holds the config file, so a
+config and its data can be moved together. Unknown keys are refused with the closest valid key
+suggested; every bad value gets the same kind of one-line message naming the field.
+"""
+
+from __future__ import annotations
+
+import difflib
+import tomllib
+from pathlib import Path
+from typing import Any, Literal
+
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
+
+from .errors import ConfigError, InputFileError
+
+__all__ = [
+    "RunConfig",
+    "SurveyConfig",
+    "FactorConfig",
+    "FitConfig",
+    "load_config",
+    "parse_config",
+]
+
+Basis = Literal["linear", "quadratic", "spline"]
+Estimator = Literal["quantile", "binned"]
+Transform = Literal["none", "log1p", "sqrt"]
+Outside = Literal["hold", "extend"]
+Sampling = Literal["nearest", "bilinear"]
+
+
+class _Section(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+class SurveyConfig(_Section):
+    """Where the survey points are and which columns hold what."""
+
+    path: Path
+    x: str = "lon"
+    y: str = "lat"
+    crs: str | None = None
+    abundance: str = "count"
+    species: str | None = None
+    layer: str | None = None
+    sampling: Sampling = "nearest"
+    drop_duplicates: bool = False
+
+
+class FactorConfig(_Section):
+    """One climate factor: where its present-day values come from and how its ceiling is shaped."""
+
+    name: str = Field(pattern=r"^[A-Za-z][A-Za-z0-9_]*$")
+    layer: Path | None = None
+    column: str | None = None
+    units: str | None = None
+    label: str | None = None
+    basis: Basis = "quadratic"
+    df: int = Field(default=4, ge=1, le=20)
+    estimator: Estimator = "quantile"
+    bins: int = Field(default=10, ge=3, le=200)
+
+    @model_validator(mode="after")
+    def _has_source(self) -> FactorConfig:
+        if self.layer is None and self.column is None:
+            raise ValueError(
+                f"factor '{self.name}' needs a source: set 'layer' (a present-day raster) or "
+                "'column' (a column of the survey table)"
+            )
+        return self
+
+
+class FitConfig(_Section):
+    """How the upper boundaries are fitted."""
+
+    tau: float = 0.95
+    transform: Transform = "none"
+    outside: Outside = "hold"
+    wedge_replicates: int = Field(default=50, ge=0, le=10_000)
+    wedge_alpha: float = Field(default=0.05, gt=0, lt=1)
+    seed: int = 0
+    species: list[str] | None = None
+
+    @field_validator("tau")
+    @classmethod
+    def _tau_range(cls, v: float) -> float:
+        if not 0.5 < v < 1:
+            raise ValueError(
+                f"tau must lie strictly between 0.5 and 1 for an upper boundary; got {v} "
+                "(0.9 to 0.99 is usual)"
+            )
+        return v
+
+
+class RunConfig(_Section):
+    """A whole run: the survey, the factors and the fit settings.
+
+    Sections for projection, scenarios and outputs are accepted as free tables here and
+    validated by the stages that use them.
+    """
+
+    name: str = "run"
+    survey: SurveyConfig
+    factors: list[FactorConfig] = Field(min_length=1)
+    fit: FitConfig = FitConfig()
+    present: dict[str, Any] | None = None
+    futures: list[dict[str, Any]] | None = None
+    projection: dict[str, Any] | None = None
+    outputs: dict[str, Any] | None = None
+    source: Path | None = Field(default=None, exclude=True)
+
+    @field_validator("factors")
+    @classmethod
+    def _unique_factors(cls, v: list[FactorConfig]) -> list[FactorConfig]:
+        seen: set[str] = set()
+        for f in v:
+            if f.name in seen:
+                raise ValueError(
+                    f"factor name '{f.name}' is listed twice; give each factor a distinct name"
+                )
+            seen.add(f.name)
+        return v
+
+    @property
+    def factor_names(self) -> list[str]:
+        return [f.name for f in self.factors]
+
+
+def _allowed_keys(model: type[BaseModel]) -> list[str]:
+    return [k for k in model.model_fields if k != "source"]
+
+
+def _section_for(loc: tuple[Any, ...]) -> type[BaseModel]:
+    model: type[BaseModel] = RunConfig
+    sections = {"survey": SurveyConfig, "factors": FactorConfig, "fit": FitConfig}
+    for part in loc[:-1]:
+        if isinstance(part, str) and part in sections:
+            model = sections[part]
+    return model
+
+
+def _format_error(err: dict[str, Any], path: Path | str) -> str:
+    loc = tuple(err.get("loc", ()))
+    dotted = ".".join(str(p) for p in loc) or "(top level)"
+    kind = err.get("type", "")
+    if kind == "extra_forbidden":
+        key = str(loc[-1])
+        allowed = _allowed_keys(_section_for(loc))
+        close = difflib.get_close_matches(key, allowed, n=1, cutoff=0.5)
+        hint = f"did you mean '{close[0]}'?" if close else f"valid keys: {', '.join(allowed)}"
+        return f"{path}: unknown key '{dotted}'; {hint}"
+    if kind == "missing":
+        return f"{path}: required key '{dotted}' is missing; add it to the config"
+    msg = str(err.get("msg", "invalid value"))
+    msg = msg.removeprefix("Value error, ")
+    value = err.get("input")
+    plain = not isinstance(value, dict | list) and value is not None and "got" not in msg
+    shown = f" (got {value!r})" if plain else ""
+    return f"{path}: '{dotted}': {msg}{shown}"
+
+
+def parse_config(data: dict[str, Any], *, base: Path | None = None, source: Path | str = "config") -> RunConfig:
+    """Validate a config mapping and resolve relative paths against ``base``."""
+    try:
+        cfg = RunConfig.model_validate(data)
+    except ValidationError as exc:
+        raise ConfigError(_format_error(exc.errors()[0], source)) from None
+    if base is None:
+        return cfg
+    return resolve_paths(cfg, base, source)
+
+
+def _resolve(p: Path | None, base: Path) -> Path | None:
+    if p is None:
+        return None
+    p = Path(p).expanduser()
+    return p if p.is_absolute() else (base / p)
+
+
+def resolve_paths(cfg: RunConfig, base: Path, source: Path | str | None = None) -> RunConfig:
+    """Return a copy of ``cfg`` with every relative path joined to ``base``."""
+    survey = cfg.survey.model_copy(update={"path": _resolve(cfg.survey.path, base)})
+    factors = [f.model_copy(update={"layer": _resolve(f.layer, base)}) for f in cfg.factors]
+    return cfg.model_copy(
+        update={"survey": survey, "factors": factors, "source": Path(source) if source else None}
+    )
+
+
+def load_config(path: str | Path) -> RunConfig:
+    """Read and validate a TOML config file."""
+    path = Path(path)
+    if not path.is_file():
+        raise InputFileError(f"config file not found: {path}; check the path")
+    try:
+        with path.open("rb") as fh:
+            data = tomllib.load(fh)
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(f"{path}: not valid TOML ({exc}); fix the syntax at that line") from None
+    except UnicodeDecodeError:
+        raise ConfigError(f"{path}: not a text file; a config must be UTF-8 TOML") from None
+    return parse_config(data, base=path.resolve().parent, source=path)

@@ -1,0 +1,145 @@
+"""The fitting stage as a whole: config -> samples -> one model per species -> files.
+
+:func:`fit_config` does the work in memory and returns a :class:`FitRun`;
+:func:`write_fit` writes the model file, the diagnostics table and the figures into a folder
+that appears complete or not at all. ``ceiling fit`` is these two calls.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import rasterio
+
+from . import __version__
+from .config import RunConfig
+from .errors import CeilingWarning, DataError, InputFileError
+from .figures import fit_figure, fit_panel
+from .model import CeilingModel, FactorSpec, ModelSet, fit
+from .outputs.atomic import atomic_write_text
+from .outputs.folder import check_output_folder, staged_folder
+from .outputs.names import DIAGNOSTICS_FILE, MODEL_FILE, fit_figure_name, fit_panel_name
+from .samples import Samples, load_samples
+
+__all__ = ["FitRun", "fit_config", "write_fit", "fit_to_folder", "factor_specs", "config_inputs"]
+
+
+@dataclass(frozen=True)
+class FitRun:
+    """The outcome of fitting a config: the models, their samples and the warnings raised."""
+
+    models: ModelSet
+    samples: dict[str, Samples]
+    warnings: list[str] = field(default_factory=list)
+
+    def summary(self) -> str:
+        lines = []
+        for m in self.models:
+            lines.append(m.summary())
+        lines.append("")
+        lines.append("Limiting-factor verdicts (wedge test):")
+        for m in self.models:
+            for f in m.factors:
+                lines.append(f"  {m.species:<12} {f.factor:<14} p={f.diagnostics.wedge_p:<9.3g} {f.diagnostics.verdict}")
+        if self.warnings:
+            lines.append(f"{len(self.warnings)} warning(s): " + "; ".join(self.warnings))
+        return "\n".join(lines)
+
+
+def _layer_units(path: Path) -> str | None:
+    try:
+        with rasterio.open(path) as src:
+            u = (src.units or (None,))[0] or src.tags(1).get("units")
+    except rasterio.errors.RasterioIOError:
+        return None
+    return u or None
+
+
+def factor_specs(cfg: RunConfig) -> list[FactorSpec]:
+    """Per-factor fitting options, with units from the config or else from the layer."""
+    out = []
+    for f in cfg.factors:
+        units = f.units or (_layer_units(f.layer) if f.layer is not None else None)
+        out.append(
+            FactorSpec(name=f.name, basis=f.basis, df=f.df, estimator=f.estimator, bins=f.bins,
+                       units=units, label=f.label)
+        )
+    return out
+
+
+def config_inputs(cfg: RunConfig) -> list[Path]:
+    return [cfg.survey.path] + [f.layer for f in cfg.factors if f.layer is not None]
+
+
+def _sha256(path: Path | None) -> str | None:
+    if path is None or not Path(path).is_file():
+        return None
+    return hashlib.sha256(Path(path).read_bytes()).hexdigest()
+
+
+def fit_config(cfg: RunConfig) -> FitRun:
+    """Fit every species of the config's survey (or ``fit.species``)."""
+    for f in cfg.factors:
+        if f.layer is not None and not Path(f.layer).is_file():
+            raise InputFileError(f"layer file not found for factor '{f.name}': {f.layer}; check factors.layer in the config")
+    caught_all: list[str] = []
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", CeilingWarning)
+        samples = load_samples(cfg, species=cfg.fit.species)
+        specs = factor_specs(cfg)
+        models: dict[str, CeilingModel] = {}
+        for sp, s in samples.items():
+            if s.n == 0:
+                raise DataError(f"species '{sp}': no usable survey points; check the survey and the layers")
+            models[sp] = fit(
+                s, specs, tau=cfg.fit.tau, transform=cfg.fit.transform, outside=cfg.fit.outside,
+                wedge_replicates=cfg.fit.wedge_replicates, wedge_alpha=cfg.fit.wedge_alpha,
+                seed=cfg.fit.seed,
+            )
+    for w in caught:
+        if issubclass(w.category, CeilingWarning):
+            caught_all.append(" ".join(str(w.message).split()))
+        else:
+            warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+    provenance = {
+        "package_version": __version__,
+        "config_sha256": _sha256(cfg.source),
+        "survey_file": Path(cfg.survey.path).name,
+        "survey_sha256": _sha256(cfg.survey.path),
+        "species_data_sha256": {sp: s.sha256 for sp, s in samples.items()},
+        "warnings": len(caught_all),
+    }
+    return FitRun(ModelSet(models, provenance), samples, caught_all)
+
+
+def write_fit(run: FitRun, out_dir: Path) -> list[Path]:
+    """Write the model file, the diagnostics CSV and the fit figures into ``out_dir``."""
+    out_dir = Path(out_dir)
+    written = [run.models.save(out_dir / MODEL_FILE)]
+    table = run.models.diagnostics_table()
+    written.append(atomic_write_text(out_dir / DIAGNOSTICS_FILE, table.to_csv(index=False, float_format="%.6g")))
+    for m in run.models:
+        s = run.samples[m.species]
+        (out_dir / fit_panel_name(m.species)).parent.mkdir(parents=True, exist_ok=True)
+        for fc in m.factors:
+            written.append(
+                fit_figure(fc, np.asarray(s.values[fc.factor]), s.abundance, out_dir / fit_figure_name(m.species, fc.factor), species=m.species)
+            )
+        written.append(fit_panel(m, s, out_dir / fit_panel_name(m.species)))
+    return written
+
+
+def fit_to_folder(cfg: RunConfig, out_dir: Path, *, overwrite: bool = False) -> tuple[FitRun, list[Path]]:
+    """Check the output folder, fit, then write everything into it at once."""
+    check_output_folder(out_dir, overwrite=overwrite, inputs=config_inputs(cfg))
+    run = fit_config(cfg)
+    with staged_folder(out_dir, overwrite=overwrite) as stage:
+        written = write_fit(run, stage)
+    return run, [Path(out_dir) / p.relative_to(stage) for p in written]
+
+

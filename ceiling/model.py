@@ -1,0 +1,338 @@
+"""The multi-factor ceiling model and its JSON model file.
+
+A :class:`CeilingModel` holds one species' per-factor ceilings and combines them by the law of
+the minimum. A :class:`ModelSet` holds the models of every species of a run and is what a model
+file stores. The file is JSON with a schema version; loading validates every field and never
+executes code.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from . import __version__
+from .boundary import FactorCeiling, fit_factor
+from .errors import FitError, InputFileError, ModelFileError
+from .kernels import combine_minimum
+from .outputs.atomic import atomic_write_text
+
+__all__ = ["SCHEMA_VERSION", "FactorSpec", "CeilingModel", "ModelSet", "fit", "load_model", "load_models"]
+
+SCHEMA_VERSION = 1
+FILE_KIND = "ceiling-model"
+
+
+@dataclass(frozen=True)
+class FactorSpec:
+    """How one factor's ceiling is shaped and estimated."""
+
+    name: str
+    basis: str = "quadratic"
+    df: int = 4
+    estimator: str = "quantile"
+    bins: int = 10
+    units: str | None = None
+    label: str | None = None
+
+    @classmethod
+    def coerce(cls, f: Any) -> FactorSpec:
+        if isinstance(f, FactorSpec):
+            return f
+        if isinstance(f, str):
+            return cls(name=f)
+        if isinstance(f, Mapping):
+            return cls(**{k: v for k, v in f.items() if k in cls.__dataclass_fields__})
+        # a validated config section (ceiling.config.FactorConfig)
+        return cls(**{k: getattr(f, k) for k in cls.__dataclass_fields__ if hasattr(f, k)})
+
+
+@dataclass(frozen=True)
+class CeilingModel:
+    """One species' ceiling: the minimum over its per-factor ceilings."""
+
+    species: str
+    factors: tuple[FactorCeiling, ...]
+    tau: float
+    transform: str
+    outside: str
+    n_points: int = 0
+    dropped: Mapping[str, int] = field(default_factory=dict)
+
+    @property
+    def factor_names(self) -> list[str]:
+        return [f.factor for f in self.factors]
+
+    def __getitem__(self, name: str) -> FactorCeiling:
+        for f in self.factors:
+            if f.factor == name:
+                return f
+        raise KeyError(f"no factor {name!r} in the model of {self.species!r}; it has {self.factor_names}")
+
+    def _column(self, values: Any, name: str) -> np.ndarray:
+        try:
+            return np.asarray(values[name], dtype=np.float64)
+        except (KeyError, IndexError):
+            raise FitError(
+                f"values for factor '{name}' are missing; the model of '{self.species}' needs "
+                f"{', '.join(self.factor_names)}"
+            ) from None
+
+    def linear_predictors(self, values: Any) -> np.ndarray:
+        """Unclipped predictors, shape (K, ...), factor axis first, in model factor order."""
+        return np.stack([f.linear_predictor(self._column(values, f.factor)) for f in self.factors])
+
+    def per_factor(self, values: Any) -> np.ndarray:
+        """Each factor's ceiling, shape (K, ...)."""
+        return np.stack([f.predict(self._column(values, f.factor)) for f in self.factors])
+
+    def evaluate(self, values: Any) -> tuple[np.ndarray, np.ndarray]:
+        """(ceiling, limiting-factor code) at the given factor values."""
+        return combine_minimum(self.linear_predictors(values), self.transform)
+
+    def predict(self, values: Any) -> np.ndarray:
+        return self.evaluate(values)[0]
+
+    def limiting(self, values: Any) -> np.ndarray:
+        return self.evaluate(values)[1]
+
+    def diagnostics_table(self) -> pd.DataFrame:
+        rows = []
+        for f in self.factors:
+            d = f.diagnostics
+            row: dict[str, Any] = {
+                "species": self.species,
+                "factor": f.factor,
+                "units": f.units or "",
+                "estimator": f.estimator,
+                "basis": f.basis.name,
+                "tau": f.tau,
+                "transform": f.transform,
+                "n": d.n,
+                "observed_min": f.observed[0],
+                "observed_max": f.observed[1],
+                "share_above": d.share_above,
+                "expected_share_above": 1 - f.tau,
+                "pinball_loss": d.pinball_loss,
+                "pseudo_r1": d.pseudo_r1,
+                "peak_at": d.peak_at,
+                "peak_ceiling": d.peak_ceiling,
+                "positive_from": d.positive_from,
+                "positive_to": d.positive_to,
+                "wedge_stat": d.wedge_stat,
+                "wedge_df": d.wedge_df,
+                "wedge_p": d.wedge_p,
+                "verdict": d.verdict,
+            }
+            for i, b in enumerate(f.params):
+                row[f"b{i}"] = b
+                row[f"b{i}_se"] = f.bse[i]
+                row[f"b{i}_ci_low"] = f.conf_int[i, 0]
+                row[f"b{i}_ci_high"] = f.conf_int[i, 1]
+            rows.append(row)
+        return pd.DataFrame(rows)
+
+    def summary(self) -> str:
+        head = (
+            f"Ceiling model for '{self.species}': {len(self.factors)} factors, tau={self.tau:g}, "
+            f"transform={self.transform}, outside the observed range: {self.outside}; "
+            f"{self.n_points} survey points used"
+        )
+        dropped = sum(self.dropped.values())
+        if dropped:
+            parts = ", ".join(f"{k}: {v}" for k, v in self.dropped.items() if v)
+            head += f"; {dropped} dropped ({parts})"
+        return "\n".join([head] + [f.summary() for f in self.factors])
+
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            "tau": self.tau,
+            "transform": self.transform,
+            "outside": self.outside,
+            "n_points": self.n_points,
+            "dropped": dict(self.dropped),
+            "factors": [f.to_dict() for f in self.factors],
+        }
+
+    def save(self, path: str | Path, *, provenance: Mapping[str, Any] | None = None) -> Path:
+        return ModelSet({self.species: self}, dict(provenance or {})).save(path)
+
+
+@dataclass(frozen=True)
+class ModelSet:
+    """The ceiling models of every species of a run, as stored in one model file."""
+
+    models: Mapping[str, CeilingModel]
+    provenance: Mapping[str, Any] = field(default_factory=dict)
+
+    def __getitem__(self, species: str) -> CeilingModel:
+        try:
+            return self.models[species]
+        except KeyError:
+            raise KeyError(f"no species {species!r} in the model file; it has {list(self.models)}") from None
+
+    def __iter__(self):
+        return iter(self.models.values())
+
+    def __len__(self) -> int:
+        return len(self.models)
+
+    @property
+    def species(self) -> list[str]:
+        return list(self.models)
+
+    def summary(self) -> str:
+        return "\n\n".join(m.summary() for m in self)
+
+    def diagnostics_table(self) -> pd.DataFrame:
+        return pd.concat([m.diagnostics_table() for m in self], ignore_index=True)
+
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            "kind": FILE_KIND,
+            "schema_version": SCHEMA_VERSION,
+            "package": {"name": "ceiling", "version": __version__},
+            "provenance": dict(self.provenance),
+            "species": {k: m.to_dict() for k, m in self.models.items()},
+        }
+
+    def to_json(self) -> str:
+        return json.dumps(self.to_dict(), indent=2, sort_keys=False, allow_nan=False) + "\n"
+
+    def save(self, path: str | Path) -> Path:
+        return atomic_write_text(Path(path), self.to_json())
+
+
+def fit(
+    samples: Any,
+    factors: Sequence[Any] | None = None,
+    *,
+    tau: float = 0.95,
+    transform: str = "none",
+    outside: str = "hold",
+    wedge_replicates: int = 50,
+    wedge_alpha: float = 0.05,
+    seed: int = 0,
+) -> CeilingModel:
+    """Fit one species' multi-factor ceiling.
+
+    ``samples`` is a :class:`ceiling.samples.Samples` (or anything with ``abundance``,
+    ``values`` (a table of factor columns) and ``species``). ``factors`` lists factor names or
+    :class:`FactorSpec` (per-factor basis and estimator); by default every column of
+    ``samples.values`` with a quadratic basis.
+    """
+    if transform not in ("none", "log1p", "sqrt"):
+        raise FitError(f"The 'transform' parameter must be none, log1p or sqrt; got {transform!r}")
+    values = samples.values
+    specs = [FactorSpec.coerce(f) for f in (factors if factors is not None else list(values.columns))]
+    y = np.asarray(samples.abundance, dtype=np.float64)
+    fitted = []
+    for i, s in enumerate(specs):
+        if s.name not in values:
+            raise FitError(f"factor '{s.name}' has no values in the samples; it has {list(values.columns)}")
+        fitted.append(
+            fit_factor(
+                np.asarray(values[s.name], dtype=np.float64), y, factor=s.name, tau=tau,
+                basis=s.basis, df=s.df, transform=transform, outside=outside,
+                estimator=s.estimator, bins=s.bins, wedge_replicates=wedge_replicates,
+                wedge_alpha=wedge_alpha, seed=seed + i, units=s.units, label=s.label,
+            )
+        )
+    return CeilingModel(
+        species=str(getattr(samples, "species", "species")),
+        factors=tuple(fitted),
+        tau=float(tau),
+        transform=transform,
+        outside=outside,
+        n_points=int(y.size),
+        dropped=dict(getattr(samples, "dropped", {}) or {}),
+    )
+
+
+def _need(d: Mapping[str, Any], key: str, where: str) -> Any:
+    if not isinstance(d, Mapping) or key not in d:
+        raise ModelFileError(f"{where}: field '{key}' is missing; re-create the model file with 'ceiling fit'")
+    return d[key]
+
+
+def _parse(data: Any, where: str) -> ModelSet:
+    if not isinstance(data, Mapping) or data.get("kind") != FILE_KIND:
+        raise ModelFileError(f"{where}: not a ceiling model file (no kind '{FILE_KIND}'); pass a model.json written by 'ceiling fit'")
+    version = data.get("schema_version")
+    if not isinstance(version, int) or isinstance(version, bool):
+        raise ModelFileError(f"{where}: 'schema_version' must be an integer; got {version!r}")
+    if version > SCHEMA_VERSION:
+        raise ModelFileError(
+            f"{where}: schema version {version} is newer than this ceiling {__version__} reads "
+            f"(up to {SCHEMA_VERSION}); upgrade ceiling or re-fit with this version"
+        )
+    if version < 1:
+        raise ModelFileError(f"{where}: unknown schema version {version}; re-create the model file with 'ceiling fit'")
+    species = _need(data, "species", where)
+    if not isinstance(species, Mapping) or not species:
+        raise ModelFileError(f"{where}: 'species' must map species names to models; re-create the model file")
+    models = {}
+    for name, m in species.items():
+        w = f"{where}: species '{name}'"
+        tau = _need(m, "tau", w)
+        if not isinstance(tau, int | float) or not 0.5 < tau < 1:
+            raise ModelFileError(f"{w}: 'tau' must be a number in (0.5, 1); got {tau!r}")
+        transform = _need(m, "transform", w)
+        outside = _need(m, "outside", w)
+        if transform not in ("none", "log1p", "sqrt") or outside not in ("hold", "extend"):
+            raise ModelFileError(f"{w}: bad 'transform' ({transform!r}) or 'outside' ({outside!r})")
+        flist = _need(m, "factors", w)
+        if not isinstance(flist, list) or not flist:
+            raise ModelFileError(f"{w}: 'factors' must be a non-empty list")
+        factors = []
+        for i, fd in enumerate(flist):
+            fw = f"{w} factor {i}"
+            for key in ("name", "basis", "coefficients", "std_errors", "conf_int",
+                        "median_coefficients", "observed_range", "diagnostics", "estimator"):
+                _need(fd, key, fw)
+            fw = f"{w} factor '{fd['name']}'"
+            try:
+                factors.append(FactorCeiling.from_dict(fd, tau=float(tau), transform=transform, outside=outside, where=fw))
+            except ModelFileError:
+                raise
+            except (TypeError, ValueError, KeyError) as exc:
+                raise ModelFileError(f"{fw}: invalid value ({exc}); re-create the model file with 'ceiling fit'") from None
+        names = [f.factor for f in factors]
+        if len(set(names)) != len(names):
+            raise ModelFileError(f"{w}: factor names repeat ({names}); each factor must appear once")
+        models[str(name)] = CeilingModel(
+            species=str(name), factors=tuple(factors), tau=float(tau), transform=transform,
+            outside=outside, n_points=int(m.get("n_points", 0)), dropped=dict(m.get("dropped", {})),
+        )
+    return ModelSet(models, dict(data.get("provenance", {})))
+
+
+def load_models(path: str | Path) -> ModelSet:
+    """Read and validate a model file (JSON; never executes code)."""
+    path = Path(path)
+    if not path.is_file():
+        raise InputFileError(f"model file not found: {path}; run 'ceiling fit' first or check the path")
+    try:
+        data = json.loads(path.read_text(encoding="utf-8"), parse_constant=lambda c: math.nan)
+    except (UnicodeDecodeError, json.JSONDecodeError) as exc:
+        raise ModelFileError(f"{path}: not valid JSON ({exc}); re-create it with 'ceiling fit'") from None
+    return _parse(data, str(path))
+
+
+def load_model(path: str | Path, species: str | None = None) -> CeilingModel:
+    """Read one species' model from a model file (``species`` needed when it holds several)."""
+    ms = load_models(path)
+    if species is None:
+        if len(ms) != 1:
+            raise ModelFileError(f"{path}: holds {len(ms)} species ({', '.join(ms.species)}); name one")
+        return next(iter(ms))
+    if species not in ms.models:
+        raise ModelFileError(f"{path}: no species '{species}'; it has {', '.join(ms.species)}")
+    return ms[species]

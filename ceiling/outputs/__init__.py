@@ -1,0 +1,1 @@
+"""Writers: atomic files, tables, rasters, the manifest."""
