@@ -37,15 +37,23 @@ class FitRun:
     samples: dict[str, Samples]
     warnings: list[str] = field(default_factory=list)
 
-    def summary(self) -> str:
+    def summary(self, *, detail: bool = False) -> str:
+        """A table of every species and factor; ``detail=True`` adds coefficients."""
         lines = []
+        if detail:
+            lines += [m.summary() + "\n" for m in self.models]
         for m in self.models:
-            lines.append(m.summary())
-        lines.append("")
-        lines.append("Limiting-factor verdicts (wedge test):")
+            s = self.samples[m.species]
+            lines.append(f"{m.species}: tau={m.tau:g}, {s.summary().split(': ', 1)[1]}")
+        head = f"  {'species':<10} {'factor':<12} {'n':>5} {'above':>6} {'R1':>6} {'peak at':>10}  {'wedge p':>9}  verdict"
+        lines.append(head)
         for m in self.models:
             for f in m.factors:
-                lines.append(f"  {m.species:<12} {f.factor:<14} p={f.diagnostics.wedge_p:<9.3g} {f.diagnostics.verdict}")
+                d = f.diagnostics
+                lines.append(
+                    f"  {m.species:<10} {f.factor:<12} {d.n:>5d} {d.share_above:>6.3f} {d.pseudo_r1:>6.3f} "
+                    f"{d.peak_at:>10.4g}  {d.wedge_p:>9.3g}  {d.verdict}"
+                )
         if self.warnings:
             lines.append(f"{len(self.warnings)} warning(s): " + "; ".join(self.warnings))
         return "\n".join(lines)

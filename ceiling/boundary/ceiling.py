@@ -78,7 +78,7 @@ class FactorCeiling:
 
     def summary(self) -> str:
         d = self.diagnostics
-        unit = f" {self.units}" if self.units else ""
+        unit = f" {self.units}" if self.units and self.units != "1" else ""
         lines = [
             f"{self.factor}: {self.basis.name} ceiling at tau={self.tau:g} ({self.estimator}), n={d.n}",
             f"  observed range {self.observed[0]:.4g} to {self.observed[1]:.4g}{unit}; "

@@ -16,12 +16,13 @@ from .options import config_arg, out_opt, overwrite_opt
 @config_arg
 @out_opt
 @overwrite_opt
+@click.option("--detail", is_flag=True, help="Print every coefficient with its standard error and interval.")
 @click.pass_context
 @handle_errors
-def fit(ctx: click.Context, config: Path, out: Path, overwrite: bool) -> None:
+def fit(ctx: click.Context, config: Path, out: Path, overwrite: bool, detail: bool) -> None:
     """Fit per-factor ceilings and write the model file, diagnostics and figures."""
     cfg = load_config(config)
     run, written = fit_to_folder(cfg, out, overwrite=overwrite)
     if not ctx.obj.get("quiet"):
-        click.echo(run.summary())
+        click.echo(run.summary(detail=detail))
         click.echo(f"\nwrote {len(written)} files to {out} (model: {out / 'model.json'})")
