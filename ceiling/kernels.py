@@ -61,3 +61,56 @@ def combine_minimum(eta: np.ndarray, transform: str = "none") -> tuple[np.ndarra
     cmin = np.where(bad, np.nan, cmin)
     code = np.where(bad, np.uint8(NODATA_CODE), code).astype(np.uint8)
     return cmin, code
+
+
+def change_kernel(present: np.ndarray, future: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Absolute change (future - present) and percent change where the present is above zero."""
+    p = np.asarray(present, dtype=np.float64)
+    f = np.asarray(future, dtype=np.float64)
+    change = f - p
+    with np.errstate(divide="ignore", invalid="ignore"):
+        pct = np.where(p > 0, 100.0 * change / p, np.nan)
+    return change.astype(np.float32), pct.astype(np.float32)
+
+
+# zone codes, as in ceiling.categories.ZONES
+STABLE, RELEASE, CONSTRAINT, OPENS, CLOSES, ABSENT = 0, 1, 2, 3, 4, 5
+
+
+def zone_kernel(
+    present: np.ndarray,
+    future: np.ndarray,
+    *,
+    release: float = 0.10,
+    constraint: float = 0.10,
+    floor: float = 0.5,
+    zero: float = 0.0,
+) -> np.ndarray:
+    """Zone class per cell.
+
+    A ceiling at or below ``zero`` counts as zero. Where both are above zero, the change is a
+    release when it exceeds ``max(release * present, floor)`` and a constraint when it falls
+    below ``-max(constraint * present, floor)``; otherwise stable. NaN in either gives 255.
+    """
+    p = np.asarray(present, dtype=np.float64)
+    f = np.asarray(future, dtype=np.float64)
+    pz, fz = p <= zero, f <= zero
+    d = f - p
+    up = np.maximum(release * p, floor)
+    down = np.maximum(constraint * p, floor)
+    out = np.full(p.shape, STABLE, dtype=np.uint8)
+    out[d > up] = RELEASE
+    out[d < -down] = CONSTRAINT
+    out[pz & ~fz] = OPENS
+    out[~pz & fz] = CLOSES
+    out[pz & fz] = ABSENT
+    out[np.isnan(p) | np.isnan(f)] = NODATA_CODE
+    return out
+
+
+def switch_kernel(present_code: np.ndarray, future_code: np.ndarray, k: int) -> np.ndarray:
+    """Limiting-factor switch code ``present * k + future``; 255 where either is nodata."""
+    p = np.asarray(present_code).astype(np.int32)
+    f = np.asarray(future_code).astype(np.int32)
+    bad = (p == NODATA_CODE) | (f == NODATA_CODE)
+    return np.where(bad, NODATA_CODE, p * k + f).astype(np.uint8)

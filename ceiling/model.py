@@ -237,14 +237,16 @@ def fit(
     for i, s in enumerate(specs):
         if s.name not in values:
             raise FitError(f"factor '{s.name}' has no values in the samples; it has {list(values.columns)}")
-        fitted.append(
-            fit_factor(
+        try:
+            fc = fit_factor(
                 np.asarray(values[s.name], dtype=np.float64), y, factor=s.name, tau=tau,
                 basis=s.basis, df=s.df, transform=transform, outside=outside,
                 estimator=s.estimator, bins=s.bins, wedge_replicates=wedge_replicates,
                 wedge_alpha=wedge_alpha, seed=seed + i, units=s.units, label=s.label,
             )
-        )
+        except FitError as exc:  # name the species: a run fits several
+            raise FitError(f"species '{getattr(samples, 'species', 'species')}': {exc}") from None
+        fitted.append(fc)
     return CeilingModel(
         species=str(getattr(samples, "species", "species")),
         factors=tuple(fitted),
@@ -267,7 +269,10 @@ def _parse(data: Any, where: str) -> ModelSet:
         raise ModelFileError(f"{where}: not a ceiling model file (no kind '{FILE_KIND}'); pass a model.json written by 'ceiling fit'")
     version = data.get("schema_version")
     if not isinstance(version, int) or isinstance(version, bool):
-        raise ModelFileError(f"{where}: 'schema_version' must be an integer; got {version!r}")
+        raise ModelFileError(
+            f"{where}: 'schema_version' must be an integer; got {version!r}; re-create the model "
+            "file with 'ceiling fit'"
+        )
     if version > SCHEMA_VERSION:
         raise ModelFileError(
             f"{where}: schema version {version} is newer than this ceiling {__version__} reads "

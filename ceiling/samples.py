@@ -154,8 +154,10 @@ def read_survey(
     bad = ~np.isfinite(ab)
     if bad.any():
         row = int(np.flatnonzero(bad)[0])
+        value = raw.iloc[row]
+        shown = "empty" if pd.isna(value) else repr(value) if isinstance(value, str) else str(value)
         raise DataError(
-            f"{path}: abundance '{abundance}' in row {row + 1} is {raw.iloc[row]!r}, not a finite "
+            f"{path}: abundance '{abundance}' in row {row + 1} is {shown}, not a finite "
             "number; abundances must be counts or densities >= 0 (record absences as 0)"
         )
     if np.any(ab < 0):

@@ -57,8 +57,11 @@ def cli(ctx: click.Context, verbose: int, quiet: bool) -> None:
 def _register() -> None:
     from . import demo as demo_cmd
     from . import fit as fit_cmd
+    from . import project as project_cmd
 
     cli.add_command(fit_cmd.fit)
+    cli.add_command(project_cmd.project)
+    cli.add_command(project_cmd.run)
     cli.add_command(demo_cmd.demo)
 
 

@@ -5,11 +5,21 @@ from __future__ import annotations
 import re
 from pathlib import Path
 
-__all__ = ["MODEL_FILE", "DIAGNOSTICS_FILE", "FIGURES_DIR", "fit_figure_name", "fit_panel_name", "safe_part"]
+__all__ = [
+    "MODEL_FILE", "DIAGNOSTICS_FILE", "FIGURES_DIR", "NETCDF_FILE", "SUMMARY_FILE", "TRANSITIONS_FILE",
+    "MANIFEST_FILE", "PRESENT_LAYERS", "FUTURE_LAYERS", "fit_figure_name", "fit_panel_name", "safe_part",
+    "climate_dir", "layer_path",
+]
 
 MODEL_FILE = "model.json"
 DIAGNOSTICS_FILE = "diagnostics.csv"
 FIGURES_DIR = "figures"
+NETCDF_FILE = "ceiling.nc"
+SUMMARY_FILE = "summary.csv"
+TRANSITIONS_FILE = "transitions.csv"
+MANIFEST_FILE = "manifest.json"
+PRESENT_LAYERS = ("ceiling", "limiting")
+FUTURE_LAYERS = ("ceiling", "change", "change_pct", "limiting", "zone", "switch")
 
 _SAFE = re.compile(r"[^A-Za-z0-9._-]+")
 
@@ -26,3 +36,14 @@ def fit_figure_name(species: str, factor: str) -> Path:
 
 def fit_panel_name(species: str) -> Path:
     return Path(FIGURES_DIR) / f"fit_{safe_part(species)}_all_factors.png"
+
+
+def climate_dir(species: str, scenario: str, model: str, period: str) -> Path:
+    """``{species}/present`` or ``{species}/{scenario}/{model}/{period}``."""
+    if scenario == "present":
+        return Path(safe_part(species)) / "present"
+    return Path(safe_part(species)) / safe_part(scenario) / safe_part(model) / safe_part(period)
+
+
+def layer_path(species: str, climate_key: tuple[str, str, str], layer: str) -> Path:
+    return climate_dir(species, *climate_key) / f"{layer}.tif"

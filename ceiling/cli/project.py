@@ -1,0 +1,61 @@
+"""``ceiling project`` and ``ceiling run``: project fitted ceilings onto climate grids."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import click
+
+from ..config import load_config
+from ..running import project_to_folder
+from .main import handle_errors
+from .options import config_arg, out_opt, overwrite_opt
+
+compute_opts = [
+    click.option("--workers", type=int, default=None, help="Start a local dask.distributed cluster with N worker processes (loopback)."),
+    click.option("--scheduler", "address", default=None, help="Join an existing dask.distributed cluster at ADDRESS."),
+    click.option("--threads", type=int, default=None, help="Threads for the default threaded scheduler (default: all cores)."),
+]
+
+
+def _with_compute(fn):
+    for opt in reversed(compute_opts):
+        fn = opt(fn)
+    return fn
+
+
+def _run(ctx: click.Context, config: Path, out: Path, model: Path | None, overwrite: bool, workers, address, threads) -> None:
+    cfg = load_config(config)
+    quiet = ctx.obj.get("quiet")
+    res = project_to_folder(
+        cfg, out, model_path=model, overwrite=overwrite, workers=workers, address=address, threads=threads,
+        progress=None if quiet else (lambda s: click.echo(s, err=True)),
+    )
+    if not quiet:
+        click.echo(res.summary())
+
+
+@click.command("project")
+@config_arg
+@click.option("--model", "model", required=True, type=click.Path(path_type=Path, dir_okay=False), help="Model file written by 'ceiling fit'.")
+@out_opt
+@overwrite_opt
+@_with_compute
+@click.pass_context
+@handle_errors
+def project(ctx, config, model, out, overwrite, workers, address, threads) -> None:
+    """Project a fitted model onto the present and every future of CONFIG."""
+    _run(ctx, config, out, model, overwrite, workers, address, threads)
+
+
+@click.command("run")
+@config_arg
+@out_opt
+@click.option("--model", "model", default=None, type=click.Path(path_type=Path, dir_okay=False), help="Reuse this model file instead of fitting.")
+@overwrite_opt
+@_with_compute
+@click.pass_context
+@handle_errors
+def run(ctx, config, out, model, overwrite, workers, address, threads) -> None:
+    """Fit (or reuse a model file) and project: the whole job on CONFIG."""
+    _run(ctx, config, out, model, overwrite, workers, address, threads)

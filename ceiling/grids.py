@@ -1,0 +1,211 @@
+"""Climate grids: layers opened lazily, aligned to one template grid, in the model's units.
+
+Each layer becomes a lazy ``xarray.DataArray`` (y, x) backed by dask: every chunk is read on
+demand through :class:`BlockReader`, which reads the window directly when the layer already
+shares the template's CRS, transform and shape, and otherwise through GDAL's warped virtual
+dataset (``WarpedVRT``), which resamples just that window onto the template. Nothing loads a
+whole grid (``reproject_match`` would). Nodata becomes NaN; unit conversion is a linear
+scale and offset applied per chunk. GDAL's block cache is capped inside every read.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import dask.array as da
+from dask.base import tokenize
+import numpy as np
+import rasterio
+import xarray as xr
+from rasterio.enums import Resampling
+from rasterio.errors import RasterioIOError
+from rasterio.vrt import WarpedVRT
+from rasterio.windows import Window
+
+from .errors import DataError, InputFileError
+from .scenarios import LayerRef
+from .units import linear_conversion
+
+__all__ = ["GridSpec", "LayerInfo", "BlockReader", "inspect_layer", "open_layer", "gdal_name", "template_grid"]
+
+
+@dataclass(frozen=True)
+class GridSpec:
+    """A grid: CRS (WKT), affine transform (6 numbers) and shape."""
+
+    crs_wkt: str
+    transform: tuple[float, float, float, float, float, float]
+    width: int
+    height: int
+
+    @property
+    def affine(self) -> rasterio.Affine:
+        return rasterio.Affine(*self.transform)
+
+    @property
+    def crs(self) -> rasterio.crs.CRS:
+        return rasterio.crs.CRS.from_wkt(self.crs_wkt)
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        return (self.height, self.width)
+
+    @property
+    def bounds(self) -> tuple[float, float, float, float]:
+        return rasterio.transform.array_bounds(self.height, self.width, self.affine)[::1]
+
+    def coords(self) -> dict[str, np.ndarray]:
+        a = self.affine
+        x = a.c + a.a * (np.arange(self.width) + 0.5)
+        y = a.f + a.e * (np.arange(self.height) + 0.5)
+        return {"y": y, "x": x}
+
+    def matches(self, other: GridSpec) -> bool:
+        if self.shape != other.shape:
+            return False
+        if self.crs != other.crs:
+            return False
+        tol = 1e-9 * max(abs(self.transform[0]), abs(self.transform[4]))
+        return all(math.isclose(a, b, abs_tol=tol) for a, b in zip(self.transform, other.transform))
+
+
+@dataclass(frozen=True)
+class LayerInfo:
+    name: str  # what GDAL opens
+    grid: GridSpec
+    nodata: float | None
+    dtype: str
+    units: str | None
+
+
+def gdal_name(ref: LayerRef) -> str:
+    if ref.variable:
+        return f'NETCDF:"{ref.path}":{ref.variable}'
+    return str(ref.path)
+
+
+def _variable_names(path: Path) -> list[str]:
+    try:
+        import netCDF4
+
+        with netCDF4.Dataset(path) as ds:
+            return [v for v, var in ds.variables.items() if var.ndim >= 2]
+    except Exception:
+        return []
+
+
+def inspect_layer(ref: LayerRef, *, factor: str) -> LayerInfo:
+    """Open a layer's header and check it can be used (one line per problem)."""
+    path = Path(ref.path)
+    where = f"layer of '{factor}' ({ref.describe()})"
+    if not path.is_file():
+        raise InputFileError(f"{where}: file not found; check the path in the config")
+    if ref.variable and ref.variable not in (names := _variable_names(path)):
+        raise DataError(
+            f"{where}: the NetCDF file has no variable '{ref.variable}'; it has {', '.join(names) or 'none'}: fix 'variable'"
+        )
+    try:
+        with rasterio.Env(GDAL_PAM_ENABLED="NO"), rasterio.open(gdal_name(ref)) as src:
+            if src.count != 1:
+                raise DataError(f"{where}: has {src.count} bands; give one single-band layer per factor")
+            if src.crs is None:
+                raise DataError(f"{where}: has no CRS; assign one (e.g. gdal_edit.py -a_srs EPSG:4326) before use")
+            t = src.transform
+            if t.b != 0 or t.d != 0:
+                raise DataError(f"{where}: the grid has rotation terms in its transform; warp it to a north-up grid first")
+            if t.a <= 0 or t.e >= 0:
+                raise DataError(f"{where}: the grid is not north-up (transform {tuple(t)[:6]}); warp it first")
+            units = ref.units or (src.units[0] if src.units and src.units[0] else None) or src.tags(1).get("units")
+            grid = GridSpec(src.crs.to_wkt(), tuple(t)[:6], src.width, src.height)  # type: ignore[arg-type]
+            return LayerInfo(gdal_name(ref), grid, src.nodata, src.dtypes[0], units or None)
+    except RasterioIOError as exc:
+        raise InputFileError(f"{where}: cannot be opened as a raster ({str(exc).splitlines()[0]}); is it a complete GeoTIFF or NetCDF?") from None
+
+
+def template_grid(ref: LayerRef, *, factor: str) -> GridSpec:
+    return inspect_layer(ref, factor=factor).grid
+
+
+def _overlaps(src_grid: GridSpec, tpl: GridSpec) -> bool:
+    from rasterio.warp import transform_bounds
+
+    try:
+        l, b, r, t = transform_bounds(src_grid.crs, tpl.crs, *src_grid.bounds, densify_pts=21)
+    except Exception:
+        return True  # cannot tell; the warp will produce nodata where it does not overlap
+    L, B, R, T = tpl.bounds
+    return l < R and r > L and b < T and t > B
+
+
+class BlockReader:
+    """Array-like (2-D, float32) that reads any window of a layer on the template grid.
+
+    Picklable (holds only names and numbers), so dask.distributed workers can use it.
+    """
+
+    def __init__(
+        self, info: LayerInfo, template: GridSpec, *, resampling: str = "bilinear",
+        scale: float = 1.0, offset: float = 0.0, cache_mb: int = 256,
+    ) -> None:
+        self.name = info.name
+        self.nodata = info.nodata
+        self.template = template
+        self.aligned = info.grid.matches(template)
+        self.resampling = resampling
+        self.scale = scale
+        self.offset = offset
+        self.cache_mb = cache_mb
+        self.shape = template.shape
+        self.dtype = np.dtype("float32")
+        self.ndim = 2
+
+    def __getitem__(self, key: Any) -> np.ndarray:
+        rows, cols = key
+        r0, r1, _ = rows.indices(self.shape[0])
+        c0, c1, _ = cols.indices(self.shape[1])
+        window = Window(c0, r0, c1 - c0, r1 - r0)
+        with rasterio.Env(GDAL_CACHEMAX=self.cache_mb, GDAL_PAM_ENABLED="NO"), rasterio.open(self.name) as src:
+            if self.aligned:
+                data = src.read(1, window=window, masked=True)
+            else:
+                with WarpedVRT(
+                    src, crs=self.template.crs, transform=self.template.affine,
+                    width=self.template.width, height=self.template.height,
+                    resampling=Resampling[self.resampling], src_nodata=self.nodata, nodata=np.nan,
+                    dtype="float32",
+                ) as vrt:
+                    data = vrt.read(1, window=window, masked=True)
+        out = np.ma.filled(data.astype(np.float64), np.nan)
+        if self.scale != 1.0 or self.offset != 0.0:
+            out = out * self.scale + self.offset
+        return out.astype(np.float32)
+
+
+def open_layer(
+    ref: LayerRef, template: GridSpec, *, factor: str, units: str | None, chunk: int = 1024,
+    resampling: str = "bilinear", cache_mb: int = 256,
+) -> xr.DataArray:
+    """A lazy, aligned, unit-converted layer on the template grid."""
+    info = inspect_layer(ref, factor=factor)
+    where = f"layer of '{factor}' ({ref.describe()})"
+    if not _overlaps(info.grid, template):
+        raise DataError(f"{where}: does not overlap the template grid (bounds {info.grid.bounds}); check the layer's extent and CRS")
+    if units is None:
+        scale, offset = 1.0, 0.0
+    elif info.units is None:
+        raise DataError(f"{where}: has no units; set a 'units' attribute on the layer or units for it in the config (model units: '{units}')")
+    else:
+        scale, offset = linear_conversion(info.units, units, where=where)
+    if np.dtype(info.dtype).kind in "iu" and info.nodata is None:
+        pass  # integer layers without nodata are used as they are
+    reader = BlockReader(info, template, resampling=resampling, scale=scale, offset=offset, cache_mb=cache_mb)
+    arr = da.from_array(reader, chunks=(chunk, chunk), asarray=True, fancy=False, lock=False,
+                        name=f"layer-{factor}-{tokenize(info.name, template, scale, offset, resampling)}",
+                        meta=np.empty((0, 0), np.float32))
+    return xr.DataArray(
+        arr, dims=("y", "x"), coords=template.coords(), name=factor,
+        attrs={"units": units or info.units or "", "source": str(ref.path), "source_units": info.units or ""},
+    )

@@ -1,0 +1,197 @@
+"""Applying fitted ceilings to climate grids, lazily and chunk by chunk.
+
+:func:`open_climate` turns one climate's layers into lazy aligned arrays; :func:`project`
+evaluates every species' ceiling and limiting factor on them in one blockwise pass (each chunk of
+each layer is read once for all species); :func:`compare` derives change, percent change, zone
+class and limiting-factor switch between the present and a future; :func:`climate_stats`
+reduces a comparison to areas per class in the same pass. Nothing here computes: the writers do.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import dask.array as da
+import numpy as np
+import xarray as xr
+
+from .errors import DataError
+from .grids import GridSpec, open_layer
+from .kernels import NODATA_CODE, change_kernel, switch_kernel, zone_kernel
+from .model import CeilingModel
+from .scenarios import Climate, ProjectionOptions
+
+__all__ = ["open_climate", "project", "compare", "climate_stats", "StatsLayout", "model_units"]
+
+
+def model_units(models: Sequence[CeilingModel], factors: Sequence[str]) -> dict[str, str]:
+    """The units each factor was fitted in (the same for every species of a run)."""
+    out: dict[str, str] = {}
+    for name in factors:
+        for m in models:
+            if name in m.factor_names and m[name].units:
+                out[name] = m[name].units  # type: ignore[assignment]
+                break
+        else:
+            raise DataError(
+                f"the model has no units for factor '{name}'; set factors.units in the config (or units on the "
+                "present-day layer) and fit again"
+            )
+    return out
+
+
+def open_climate(
+    climate: Climate, template: GridSpec, factors: Sequence[str], units: dict[str, str], opts: ProjectionOptions
+) -> dict[str, xr.DataArray]:
+    missing = [f for f in factors if f not in climate.layers]
+    if missing:
+        raise DataError(f"climate {climate.label} has no layer for factor(s) {', '.join(missing)}; add them to the config")
+    return {
+        f: open_layer(climate.layers[f], template, factor=f, units=units[f], chunk=opts.chunk,
+                      resampling=opts.resampling, cache_mb=opts.gdal_cache_mb)
+        for f in factors
+    }
+
+
+def _project_block(*blocks: np.ndarray, factors: tuple[str, ...], models: tuple[CeilingModel, ...], has_mask: bool) -> np.ndarray:
+    arrays = list(blocks)
+    mask = arrays.pop() if has_mask else None
+    values = {f: a.astype(np.float64) for f, a in zip(factors, arrays)}
+    if mask is not None:
+        for a in values.values():
+            a[~mask] = np.nan
+    s = len(models)
+    out = np.empty((2 * s, *arrays[0].shape), dtype=np.float32)
+    for i, m in enumerate(models):
+        c, code = m.evaluate(values)
+        out[i] = c
+        out[s + i] = code
+    return out
+
+
+def project(
+    models: Sequence[CeilingModel], layers: dict[str, xr.DataArray], *, mask: xr.DataArray | None = None
+) -> xr.Dataset:
+    """Lazy ceiling (float32) and limiting-factor code (uint8) for every species.
+
+    Factor codes follow each model's own factor order; 255 marks nodata (any factor missing).
+    """
+    factors = tuple(layers)
+    for m in models:
+        lacking = [f for f in m.factor_names if f not in layers]
+        if lacking:
+            raise DataError(f"the model of '{m.species}' needs factor(s) {', '.join(lacking)}, which the layers lack; the model and the config must name the same factors")
+    arrays = [layers[f].data for f in factors]
+    if mask is not None:
+        arrays.append(mask.data)
+    s = len(models)
+    first = layers[factors[0]]
+    stacked = da.map_blocks(
+        _project_block, *arrays, factors=factors, models=tuple(models), has_mask=mask is not None,
+        new_axis=0, chunks=((2 * s,), *first.data.chunks), dtype=np.float32,
+        meta=np.empty((0, 0, 0), np.float32),
+    )
+    coords = {"species": [m.species for m in models], "y": first.y, "x": first.x}
+    ceiling = stacked[:s]
+    codes = stacked[s:]
+    limiting = da.where(da.isnan(codes), NODATA_CODE, codes).astype(np.uint8)
+    return xr.Dataset(
+        {"ceiling": (("species", "y", "x"), ceiling), "limiting": (("species", "y", "x"), limiting)},
+        coords=coords,
+    )
+
+
+def compare(present: xr.Dataset, future: xr.Dataset, *, n_factors: Sequence[int], opts: ProjectionOptions) -> xr.Dataset:
+    """Change, percent change, zone and switch between present and future (lazy)."""
+    p, f = present["ceiling"].data, future["ceiling"].data
+
+    def changes(pb: np.ndarray, fb: np.ndarray) -> np.ndarray:
+        ch, pct = change_kernel(pb, fb)
+        z = zone_kernel(pb, fb, release=opts.release_threshold, constraint=opts.constraint_threshold,
+                        floor=opts.absolute_floor, zero=opts.zero_level)
+        return np.stack([ch, pct, z.astype(np.float32)])
+
+    out = da.map_blocks(changes, p, f, new_axis=0, chunks=((3,), *p.chunks), dtype=np.float32,
+                        meta=np.empty((0, 0, 0, 0), np.float32))
+    ks = np.asarray(n_factors).reshape(-1, 1, 1)
+    switch = da.map_blocks(
+        lambda a, b: np.stack([switch_kernel(a[i], b[i], int(ks[i, 0, 0])) for i in range(a.shape[0])]),
+        present["limiting"].data, future["limiting"].data, dtype=np.uint8,
+    )
+    dims = ("species", "y", "x")
+    return xr.Dataset(
+        {
+            "change": (dims, out[0]),
+            "change_pct": (dims, out[1]),
+            "zone": (dims, out[2].astype(np.uint8)),
+            "switch": (dims, switch),
+        },
+        coords=present.coords,
+    )
+
+
+@dataclass(frozen=True)
+class StatsLayout:
+    """Where each figure sits in the per-block statistics vector of one species."""
+
+    k: int
+    n_zones: int = 6
+    hist_bins: int = 4000
+    hist_max: float = 1.0
+
+    @property
+    def size(self) -> int:
+        return self.n_zones + 2 * self.k + self.k * self.k + 5 + self.hist_bins + 2
+
+    def slices(self) -> dict[str, slice]:
+        i = 0
+        out = {}
+        for name, n in (("zone", self.n_zones), ("lim_now", self.k), ("lim_later", self.k),
+                        ("switch", self.k * self.k), ("area", 1), ("change_area", 1), ("cells", 1),
+                        ("now_area", 1), ("later_area", 1),
+                        ("hist", self.hist_bins + 2)):
+            out[name] = slice(i, i + n)
+            i += n
+        return out
+
+    def edges(self) -> np.ndarray:
+        return np.linspace(-self.hist_max, self.hist_max, self.hist_bins + 1)
+
+
+def _stats_block(pc, pl, fc, fl, zone, area, layout: StatsLayout) -> np.ndarray:
+    sl = layout.slices()
+    v = np.zeros(layout.size)
+    ok = np.isfinite(pc) & np.isfinite(fc)
+    w = area[ok]
+    v[sl["zone"]] = np.bincount(zone[ok], weights=w, minlength=layout.n_zones)[: layout.n_zones]
+    k = layout.k
+    v[sl["lim_now"]] = np.bincount(pl[ok], weights=w, minlength=k)[:k]
+    v[sl["lim_later"]] = np.bincount(fl[ok], weights=w, minlength=k)[:k]
+    v[sl["switch"]] = np.bincount(pl[ok].astype(np.int64) * k + fl[ok], weights=w, minlength=k * k)[: k * k]
+    d = (fc[ok].astype(np.float64) - pc[ok])
+    v[sl["area"]] = w.sum()
+    v[sl["change_area"]] = (d * w).sum()
+    v[sl["cells"]] = ok.sum()
+    v[sl["now_area"]] = (pc[ok].astype(np.float64) * w).sum()
+    v[sl["later_area"]] = (fc[ok].astype(np.float64) * w).sum()
+    idx = np.searchsorted(layout.edges(), d, side="right")  # 0 = below, bins+1 = above
+    v[sl["hist"]] = np.bincount(idx, weights=w, minlength=layout.hist_bins + 2)
+    return v
+
+
+def climate_stats(present: xr.Dataset, future: xr.Dataset, cmp: xr.Dataset, area: da.Array, layouts: Sequence[StatsLayout]) -> list[da.Array]:
+    """Per-species statistic vectors (lazy), reduced over all chunks."""
+    out = []
+    for i, lay in enumerate(layouts):
+        def block(pc, pl, fc, fl, z, a, lay=lay):
+            return _stats_block(pc, pl, fc, fl, z, a, lay)[None, None, :]
+
+        blocks = da.map_blocks(
+            block, present["ceiling"].data[i], present["limiting"].data[i], future["ceiling"].data[i],
+            future["limiting"].data[i], cmp["zone"].data[i], area, new_axis=2,
+            chunks=(tuple(1 for _ in area.chunks[0]), tuple(1 for _ in area.chunks[1]), (lay.size,)),
+            dtype=np.float64,
+        )
+        out.append(blocks.sum(axis=(0, 1)))
+    return out

@@ -1,0 +1,379 @@
+"""The projection stage as a whole: models + climates -> maps, NetCDF, tables, manifest.
+
+:func:`project_to_folder` checks everything it can before computing, then, inside a staging
+folder that replaces the output folder only when complete:
+
+1. projects the present once (all species in one pass over the present layers) and writes its
+   maps; the futures read the present back from those files instead of recomputing it;
+2. for every future, reads each layer once, projects all species, compares with the present and
+   writes the maps, with the summary statistics reduced in the same pass;
+3. writes the run's CF NetCDF from the written maps, the summary and transition tables, and the
+   manifest (checksums of every input and output).
+"""
+
+from __future__ import annotations
+
+import logging
+import time
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import dask.array as da
+import numpy as np
+import pandas as pd
+import xarray as xr
+
+from .areas import cell_areas
+from .categories import ZONES, factor_categories, switch_categories
+from .cluster import Compute, compute_context
+from .config import RunConfig
+from .errors import DataError
+from .grids import BlockReader, GridSpec, inspect_layer, template_grid
+from .kernels import NODATA_CODE
+from .model import CeilingModel, ModelSet
+from .outputs.atomic import atomic_write_text
+from .outputs.geotiff import WindowTarget, create_tiled, finalize_cog
+from .outputs.netcdf import write_netcdf
+from .outputs.names import NETCDF_FILE, FUTURE_LAYERS, PRESENT_LAYERS, SUMMARY_FILE, TRANSITIONS_FILE, layer_path
+from .projection import StatsLayout, climate_stats, compare, model_units, open_climate, project
+from .scenarios import LayerRef, PRESENT, Climate, ProjectionOptions, climates, projection_options
+
+__all__ = ["ProjectionRun", "RunResult", "run_projection", "project_to_folder", "LAYER_META"]
+
+log = logging.getLogger(__name__)
+
+# dtype, long name, units
+LAYER_META: dict[str, tuple[str, str, str]] = {
+    "ceiling": ("float32", "potential maximum abundance (ceiling), in survey abundance units", "1"),
+    "change": ("float32", "change of the ceiling, future minus present", "1"),
+    "change_pct": ("float32", "change of the ceiling relative to the present", "%"),
+    "limiting": ("uint8", "limiting factor (law of the minimum)", ""),
+    "zone": ("uint8", "zone class of ceiling change", ""),
+    "switch": ("uint8", "limiting-factor switch, present to future", ""),
+}
+
+
+def layer_categories(layer: str, factors: list[str]):
+    if layer == "limiting":
+        return factor_categories(factors)
+    if layer == "zone":
+        return ZONES
+    if layer == "switch":
+        return switch_categories(factors)
+    return None
+
+
+@dataclass
+class ProjectionRun:
+    """What a projection wrote and measured."""
+
+    climates: list[Climate]
+    grid: GridSpec
+    summary: pd.DataFrame
+    transitions: pd.DataFrame
+    written: list[Path] = field(default_factory=list)
+    timings: dict[str, float] = field(default_factory=dict)
+    compute: str = ""
+
+    def headline(self) -> pd.DataFrame:
+        cols = ["species", "scenario", "model", "period", "area_km2_release", "area_km2_constraint",
+                "area_km2_stable", "area_km2_opens", "area_km2_closes", "mean_change", "median_change"]
+        fut = self.summary[self.summary["scenario"] != PRESENT]
+        return fut[[c for c in cols if c in fut.columns]]
+
+    def summary_text(self) -> str:
+        h = self.headline()
+        if h.empty:
+            return "present only: no futures in the config"
+        with pd.option_context("display.width", 160, "display.max_columns", 20):
+            return h.to_string(index=False, float_format=lambda v: f"{v:,.1f}")
+
+
+def _read_back(path: Path, grid: GridSpec, chunk: int, *, code: bool) -> da.Array:
+    info = inspect_layer(LayerRef(path), factor=path.stem)
+    reader = BlockReader(info, grid, resampling="nearest")
+    arr = da.from_array(reader, chunks=(chunk, chunk), asarray=True, lock=False, fancy=False,
+                        name=f"readback-{path}", meta=np.empty((0, 0), np.float32))
+    if code:
+        return da.where(da.isnan(arr), NODATA_CODE, arr).astype(np.uint8)
+    return arr
+
+
+def _layout(m: CeilingModel) -> StatsLayout:
+    peaks = [f.diagnostics.peak_ceiling for f in m.factors if np.isfinite(f.diagnostics.peak_ceiling)]
+    top = min(peaks) if peaks else 1.0
+    return StatsLayout(k=len(m.factors), hist_max=max(top, 1e-6) * (1.0 if m.outside == "hold" else 4.0))
+
+
+def _stats_rows(models, climate: Climate, vectors, layouts) -> tuple[list[dict], list[dict]]:
+    rows, trans = [], []
+    for m, v, lay in zip(models, vectors, layouts):
+        sl = lay.slices()
+        area = float(v[sl["area"]][0])
+        row: dict[str, Any] = {"species": m.species, "scenario": climate.scenario, "model": climate.model,
+                               "period": climate.period, "area_km2": area / 1e6}
+        row["mean_ceiling_now"] = float(v[sl["now_area"]][0]) / area if area else np.nan
+        if not climate.is_present:
+            row["mean_ceiling_later"] = float(v[sl["later_area"]][0]) / area if area else np.nan
+            for z in ZONES:
+                row[f"area_km2_{z.name}"] = float(v[sl["zone"]][z.code]) / 1e6
+        for i, f in enumerate(m.factor_names):
+            row[f"area_km2_limited_now_{f}"] = float(v[sl["lim_now"]][i]) / 1e6
+            if not climate.is_present:
+                row[f"area_km2_limited_later_{f}"] = float(v[sl["lim_later"]][i]) / 1e6
+        if not climate.is_present:
+            row["mean_change"] = float(v[sl["change_area"]][0]) / area if area else np.nan
+            row["median_change"] = _weighted_median(v[sl["hist"]], lay)
+            k = lay.k
+            mat = v[sl["switch"]].reshape(k, k)
+            for i, a in enumerate(m.factor_names):
+                for j, b in enumerate(m.factor_names):
+                    trans.append({"species": m.species, "scenario": climate.scenario, "model": climate.model,
+                                  "period": climate.period, "limiting_now": a, "limiting_later": b,
+                                  "area_km2": float(mat[i, j]) / 1e6})
+        rows.append(row)
+    return rows, trans
+
+
+def _weighted_median(hist: np.ndarray, lay: StatsLayout) -> float:
+    """Area-weighted median from the change histogram (exact to one bin width)."""
+    total = hist.sum()
+    if total <= 0:
+        return float("nan")
+    cum = np.cumsum(hist)
+    i = int(np.searchsorted(cum, 0.5 * total))
+    if i == 0 or i == hist.size - 1:
+        return float("nan")  # beyond the histogram's range
+    edges = lay.edges()
+    lo, hi = edges[i - 1], edges[i]
+    before = cum[i - 1] if i > 0 else 0.0
+    frac = (0.5 * total - before) / hist[i] if hist[i] > 0 else 0.5
+    return float(lo + frac * (hi - lo))
+
+
+def _write_climate(
+    comp: Compute, stage: Path, grid: GridSpec, climate: Climate, layers: dict[str, da.Array],
+    models: Sequence[CeilingModel], factor_lists: list[list[str]], stats, valid, chunk: int,
+) -> tuple[list[Path], list[np.ndarray]]:
+    """Stream every map of one climate and reduce its statistics in one compute."""
+    sources, targets, finals = [], [], []
+    for i, m in enumerate(models):
+        for name in layers:
+            dtype, long_name, units = LAYER_META[name]
+            final = stage / layer_path(m.species, climate.key, name)
+            final.parent.mkdir(parents=True, exist_ok=True)
+            tmp = final.with_name(f".stream-{final.name}")
+            cats = layer_categories(name, factor_lists[i])
+            tags = {"species": m.species, "scenario": climate.scenario, "climate_model": climate.model,
+                    "period": climate.period, "layer": name,
+                    "caution": "potential upper limit of abundance, not a forecast; needs expert review"}
+            create_tiled(tmp, grid, dtype=dtype, description=long_name, units=units, chunk=chunk, categories=cats, tags=tags)
+            sources.append(layers[name][i])
+            targets.append(WindowTarget(tmp, dtype))
+            finals.append((tmp, final, cats, long_name))
+    stored = da.store(sources, targets, lock=comp.lock, compute=False)
+    results = comp.compute(stored, *stats, *valid)
+    vectors = [np.asarray(v) for v in results[1 : 1 + len(stats)]]
+    counts = results[1 + len(stats):]
+    for f, n in zip(climate.layers, counts):
+        if int(n) == 0:
+            raise DataError(
+                f"layer of '{f}' for {climate.label} ({climate.layers[f].describe()}) is all nodata inside the "
+                "study area; check the file and the mask"
+            )
+    written = []
+    for tmp, final, cats, long_name in finals:
+        written += finalize_cog(tmp, final, categorical=cats is not None, categories=cats, description=long_name)
+    return written, vectors
+
+
+def run_projection(
+    cfg: RunConfig, models: ModelSet, stage: Path, *, workers: int | None = None, address: str | None = None,
+    threads: int | None = None, progress: Callable[[str], None] | None = None,
+) -> ProjectionRun:
+    """Project every species onto every climate of ``cfg``, writing into ``stage``."""
+    say = progress or (lambda s: None)
+    opts: ProjectionOptions = projection_options(cfg)
+    cl = climates(cfg)
+    factors = cfg.factor_names
+    ms = list(models)
+    for m in ms:
+        extra = [f for f in m.factor_names if f not in factors]
+        if extra:
+            raise DataError(f"the model of '{m.species}' uses factor(s) {', '.join(extra)} that the config does not list; "
+                            "use the model file fitted with this config")
+    used = [f for f in factors if any(f in m.factor_names for m in ms)]
+    units = model_units(ms, used)
+    tref = LayerRef(Path(opts.template)) if opts.template else cl[0].layers[used[0]]
+    grid = template_grid(tref, factor=used[0])
+    area = cell_areas(grid, chunk=opts.chunk)
+    mask = _mask(opts, grid, cfg)
+    layouts = [_layout(m) for m in ms]
+    factor_lists = [m.factor_names for m in ms]
+    timings: dict[str, float] = {}
+    written: list[Path] = []
+    rows: list[dict] = []
+    trans: list[dict] = []
+    # open every climate's layers first, so that a bad layer is refused before any computing
+    opened = [open_climate(c, grid, used, units, opts) for c in cl]
+    with compute_context(workers=workers, address=address, threads=threads) as comp:
+        t0 = time.perf_counter()
+        pres_ds = project(ms, opened[0], mask=mask)
+        pres_layers = {n: pres_ds[n].data for n in PRESENT_LAYERS}
+        stats = climate_stats(pres_ds, pres_ds, _present_zone(pres_ds), area, layouts)
+        valid = [da.isfinite(opened[0][f].data).sum() for f in used]
+        w, vec = _write_climate(comp, stage, grid, cl[0], pres_layers, ms, factor_lists, stats, valid, opts.chunk)
+        written += w
+        r, _ = _stats_rows(ms, cl[0], vec, layouts)
+        rows += r
+        timings["present"] = time.perf_counter() - t0
+        say(f"[1/{len(cl)}] present ({cl[0].period}): {len(w)} files in {timings['present']:.1f} s")
+        back = xr.Dataset(
+            {
+                "ceiling": (("species", "y", "x"), da.stack([_read_back(stage / layer_path(m.species, cl[0].key, "ceiling"), grid, opts.chunk, code=False) for m in ms]).rechunk({0: -1})),
+                "limiting": (("species", "y", "x"), da.stack([_read_back(stage / layer_path(m.species, cl[0].key, "limiting"), grid, opts.chunk, code=True) for m in ms]).rechunk({0: -1})),
+            }
+        )
+        for j, (c, lay) in enumerate(zip(cl[1:], opened[1:]), start=2):
+            t0 = time.perf_counter()
+            fut = project(ms, lay, mask=mask)
+            cmp = compare(back, fut, n_factors=[len(m.factors) for m in ms], opts=opts)
+            maps = {"ceiling": fut["ceiling"].data, "change": cmp["change"].data, "change_pct": cmp["change_pct"].data,
+                    "limiting": fut["limiting"].data, "zone": cmp["zone"].data, "switch": cmp["switch"].data}
+            stats = climate_stats(back, fut, cmp, area, layouts)
+            valid = [da.isfinite(lay[f].data).sum() for f in used]
+            w, vec = _write_climate(comp, stage, grid, c, {n: maps[n] for n in FUTURE_LAYERS}, ms, factor_lists, stats, valid, opts.chunk)
+            written += w
+            r, t = _stats_rows(ms, c, vec, layouts)
+            rows += r
+            trans += t
+            timings["/".join(c.key)] = time.perf_counter() - t0
+            say(f"[{j}/{len(cl)}] {c.label}: {len(w)} files in {timings['/'.join(c.key)]:.1f} s")
+        t0 = time.perf_counter()
+        written.append(_netcdf(stage, grid, ms, cl, area, opts, cfg))
+        timings["netcdf"] = time.perf_counter() - t0
+        say(f"wrote {NETCDF_FILE} in {timings['netcdf']:.1f} s")
+        summary = pd.DataFrame(rows)
+        transitions = pd.DataFrame(trans)
+        written.append(atomic_write_text(stage / SUMMARY_FILE, summary.to_csv(index=False, float_format="%.6g")))
+        written.append(atomic_write_text(stage / TRANSITIONS_FILE, transitions.to_csv(index=False, float_format="%.6g")))
+        run = ProjectionRun(cl, grid, summary, transitions, written, timings, comp.describe())
+    return run
+
+
+def _present_zone(ds: xr.Dataset) -> xr.Dataset:
+    from .kernels import ABSENT, STABLE
+
+    c = ds["ceiling"].data
+    z = da.where(da.isnan(c), NODATA_CODE, da.where(c > 0, STABLE, ABSENT)).astype(np.uint8)
+    return xr.Dataset({"zone": (("species", "y", "x"), z)})
+
+
+def _mask(opts: ProjectionOptions, grid: GridSpec, cfg: RunConfig) -> xr.DataArray | None:
+    if not opts.mask:
+        return None
+    from .masks import open_mask
+
+    base = Path(cfg.source).resolve().parent if cfg.source else Path.cwd()
+    p = Path(opts.mask)
+    return open_mask(p if p.is_absolute() else base / p, grid, chunk=opts.chunk)
+
+
+def _netcdf(stage: Path, grid: GridSpec, ms: list[CeilingModel], cl: list[Climate], area: da.Array,
+            opts: ProjectionOptions, cfg: RunConfig) -> Path:
+    """Assemble the run's NetCDF from the maps just written (lazy, chunk by chunk)."""
+    factors = ms[0].factor_names
+    if any(m.factor_names != factors for m in ms):
+        raise DataError("species use different factor lists; the NetCDF needs one set of limiting-factor codes")
+    layers: dict[str, Any] = {}
+    for name in PRESENT_LAYERS:
+        dtype, long_name, units = LAYER_META[name]
+        arrs = [_read_back(stage / layer_path(m.species, cl[0].key, name), grid, opts.chunk, code=dtype == "uint8") for m in ms]
+        layers[f"{name}_present"] = (da.stack(arrs), f"{long_name}, present", units, layer_categories(name, factors))
+    futures = cl[1:]
+    if futures:
+        for name in FUTURE_LAYERS:
+            dtype, long_name, units = LAYER_META[name]
+            arrs = [da.stack([_read_back(stage / layer_path(m.species, c.key, name), grid, opts.chunk, code=dtype == "uint8")
+                              for c in futures]) for m in ms]
+            layers[name] = (da.stack(arrs), long_name, units, layer_categories(name, factors))
+    return write_netcdf(
+        stage / NETCDF_FILE, grid=grid, species=[m.species for m in ms], futures=[c.key for c in futures],
+        layers=layers, area=area, attrs={"title": f"ceilings of species abundance: {cfg.name}",
+                                         "present_period": cl[0].period},
+    )
+
+
+@dataclass
+class RunResult:
+    """A finished ``ceiling run`` / ``ceiling project``."""
+
+    out: Path
+    projection: ProjectionRun
+    fit: Any = None
+    seconds: float = 0.0
+
+    def summary(self) -> str:
+        head = f"projected {len(self.projection.climates)} climates on a {self.projection.grid.height} x {self.projection.grid.width} grid with {self.projection.compute} in {self.seconds:.1f} s"
+        return head + "\n" + self.projection.summary_text() + f"\n\noutputs in {self.out}"
+
+
+def _all_layer_paths(cl: list[Climate]) -> list[Path]:
+    return [ref.path for c in cl for ref in c.layers.values()]
+
+
+def project_to_folder(
+    cfg: RunConfig, out: Path, *, model_path: Path | None = None, overwrite: bool = False,
+    workers: int | None = None, address: str | None = None, threads: int | None = None,
+    progress: Callable[[str], None] | None = None,
+) -> RunResult:
+    """Fit (unless ``model_path`` is given) and project, into a folder that appears complete."""
+    from .fitting import config_inputs, fit_config, write_fit
+    from .model import load_models
+    from .outputs.folder import check_output_folder, staged_folder
+    from .outputs.manifest import write_manifest
+    from .outputs.names import MANIFEST_FILE, MODEL_FILE
+
+    t_start = time.perf_counter()
+    cl = climates(cfg)
+    projection_options(cfg)
+    inputs = config_inputs(cfg) + _all_layer_paths(cl) + ([Path(model_path)] if model_path else [])
+    check_output_folder(out, overwrite=overwrite, inputs=inputs)
+    fit_run = None
+    if model_path is not None:
+        models = load_models(model_path)
+    else:
+        fit_run = fit_config(cfg)
+        models = fit_run.models
+        if progress:
+            progress(f"fitted {len(models)} species: " + ", ".join(
+                f"{m.species} ({sum(f.is_limiting for f in m.factors)}/{len(m.factors)} factors act as limits)" for m in models))
+    with staged_folder(out, overwrite=overwrite) as stage:
+        if fit_run is not None:
+            write_fit(fit_run, stage)
+        else:
+            models.save(stage / MODEL_FILE)
+        run = run_projection(cfg, models, stage, workers=workers, address=address, threads=threads, progress=progress)
+        seconds = time.perf_counter() - t_start
+        outputs = [p for p in stage.rglob("*") if p.is_file()]
+        warnings_list = list(fit_run.warnings) if fit_run is not None else []
+        write_manifest(
+            stage / MANIFEST_FILE, root=stage, config=cfg.source, inputs=inputs, outputs=outputs,
+            extra={
+                "model": {"path": MODEL_FILE, "sha256": _sha(stage / MODEL_FILE),
+                          "fitted_in_this_run": fit_run is not None},
+                "climates": [{"scenario": c.scenario, "model": c.model, "period": c.period} for c in cl],
+                "compute": run.compute,
+                "timing_s": {k: round(v, 3) for k, v in {**run.timings, "total": seconds}.items()},
+                "warnings": {"count": len(warnings_list), "messages": warnings_list},
+            },
+        )
+    return RunResult(Path(out), run, fit_run, seconds)
+
+
+def _sha(p: Path) -> str:
+    from .outputs.atomic import sha256_file
+
+    return sha256_file(p)

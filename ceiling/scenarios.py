@@ -1,0 +1,213 @@
+"""The climates of a run: the present baseline and the futures, with their layers.
+
+A climate is identified by (scenario, model, period); the present is ("present", "", its
+period). Futures are listed in the config either one by one::
+
+    [[futures]]
+    scenario = "ssp245"
+    model = "model-a"
+    period = "2041-2070"
+    layers = { tmax_warm = "future/a/tmax.tif", precip = { path = "f.nc", variable = "pr" } }
+
+or as a product of names with a path pattern (``{scenario}``, ``{model}``, ``{period}`` and
+``{factor}`` are filled in; ``variable`` names the NetCDF variable and may use them too)::
+
+    [[futures]]
+    scenarios = ["ssp245", "ssp585"]
+    models = ["model-c"]
+    periods = ["2041-2070", "2071-2100"]
+    pattern = "future/{scenario}/{model}/{period}.nc"
+    variable = "{factor}"
+
+Relative paths are resolved against the config's folder. The projection options
+(``[projection]``) are validated here too.
+"""
+
+from __future__ import annotations
+
+import itertools
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any, Literal
+
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
+
+from .config import RunConfig, _format_error
+from .errors import ConfigError
+
+__all__ = ["LayerRef", "Climate", "ProjectionOptions", "climates", "projection_options", "PRESENT"]
+
+PRESENT = "present"
+
+
+@dataclass(frozen=True)
+class LayerRef:
+    """Where one factor of one climate comes from."""
+
+    path: Path
+    variable: str | None = None
+    units: str | None = None
+
+    def describe(self) -> str:
+        return f"{self.path}" + (f" (variable '{self.variable}')" if self.variable else "")
+
+
+@dataclass(frozen=True)
+class Climate:
+    scenario: str
+    model: str
+    period: str
+    layers: dict[str, LayerRef]
+
+    @property
+    def is_present(self) -> bool:
+        return self.scenario == PRESENT
+
+    @property
+    def key(self) -> tuple[str, str, str]:
+        return (self.scenario, self.model, self.period)
+
+    @property
+    def label(self) -> str:
+        return "present" if self.is_present else f"{self.scenario} / {self.model} / {self.period}"
+
+
+class _Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+class _LayerSpec(_Strict):
+    path: str
+    variable: str | None = None
+    units: str | None = None
+
+
+class _PresentSpec(_Strict):
+    period: str = "baseline"
+    layers: dict[str, str | _LayerSpec] = Field(default_factory=dict)
+    units: dict[str, str] = Field(default_factory=dict)
+
+
+class _FutureSpec(_Strict):
+    scenario: str | None = None
+    model: str | None = None
+    period: str | None = None
+    scenarios: list[str] | None = None
+    models: list[str] | None = None
+    periods: list[str] | None = None
+    layers: dict[str, str | _LayerSpec] = Field(default_factory=dict)
+    pattern: str | None = None
+    variable: str | None = None
+    units: dict[str, str] = Field(default_factory=dict)
+
+    @model_validator(mode="after")
+    def _one_form(self) -> _FutureSpec:
+        for one, many in (("scenario", "scenarios"), ("model", "models"), ("period", "periods")):
+            if (getattr(self, one) is None) == (getattr(self, many) is None):
+                raise ValueError(f"give either '{one}' or '{many}' (a list) for each future")
+        if not self.layers and not self.pattern:
+            raise ValueError("a future needs 'layers' (one path per factor) or a 'pattern'")
+        return self
+
+
+class ProjectionOptions(_Strict):
+    """How the projection runs and classifies change (``[projection]`` in the config)."""
+
+    chunk: int = Field(default=1024, ge=64, le=16384)
+    resampling: Literal["nearest", "bilinear", "cubic", "average"] = "bilinear"
+    template: str | None = None
+    mask: str | None = None
+    release_threshold: float = Field(default=0.10, ge=0)
+    constraint_threshold: float = Field(default=0.10, ge=0)
+    absolute_floor: float = Field(default=0.5, ge=0)
+    zero_level: float = Field(default=0.0, ge=0)
+    gdal_cache_mb: int = Field(default=256, ge=16, le=65536)
+
+    @model_validator(mode="after")
+    def _chunk_multiple(self) -> ProjectionOptions:
+        if self.chunk % 16:
+            raise ValueError(f"chunk must be a multiple of 16 (GeoTIFF tiles); got {self.chunk}")
+        return self
+
+
+def _validate(model: type[BaseModel], data: Any, where: str, source: Any):
+    try:
+        return model.model_validate(data if data is not None else {})
+    except ValidationError as exc:
+        err = exc.errors()[0]
+        err = {**err, "loc": (where, *err.get("loc", ()))}
+        msg = _format_error(err, source or "config")
+        raise ConfigError(msg) from None
+
+
+def projection_options(cfg: RunConfig) -> ProjectionOptions:
+    return _validate(ProjectionOptions, cfg.projection, "projection", cfg.source)
+
+
+def _base(cfg: RunConfig) -> Path:
+    return Path(cfg.source).resolve().parent if cfg.source else Path.cwd()
+
+
+def _ref(spec: str | _LayerSpec, base: Path, fmt: dict[str, str], units: str | None) -> LayerRef:
+    if isinstance(spec, str):
+        path, variable, u = spec, None, None
+    else:
+        path, variable, u = spec.path, spec.variable, spec.units
+    p = Path(path.format(**fmt)).expanduser()
+    return LayerRef(
+        path=p if p.is_absolute() else base / p,
+        variable=variable.format(**fmt) if variable else None,
+        units=u or units,
+    )
+
+
+def climates(cfg: RunConfig) -> list[Climate]:
+    """The present (first) and every future of the config, with one layer per factor."""
+    base = _base(cfg)
+    names = cfg.factor_names
+    pres = _validate(_PresentSpec, cfg.present, "present", cfg.source)
+    unknown = set(pres.layers) - set(names)
+    if unknown:
+        raise ConfigError(f"{cfg.source}: present.layers names unknown factor(s) {sorted(unknown)}; factors are {names}")
+    layers = {}
+    for f in cfg.factors:
+        if f.name in pres.layers:
+            layers[f.name] = _ref(pres.layers[f.name], base, {"factor": f.name}, pres.units.get(f.name) or f.units)
+        elif f.layer is not None:
+            layers[f.name] = LayerRef(Path(f.layer), None, f.units)
+        else:
+            raise ConfigError(
+                f"{cfg.source}: factor '{f.name}' has no present-day layer (only a table column); "
+                f"set factors.layer or present.layers.{f.name} to project it"
+            )
+    out = [Climate(PRESENT, "", pres.period, layers)]
+    seen: set[tuple[str, str, str]] = set()
+    for i, raw in enumerate(cfg.futures or []):
+        spec = _validate(_FutureSpec, raw, f"futures.{i}", cfg.source)
+        for sc, mo, pe in itertools.product(
+            spec.scenarios or [spec.scenario], spec.models or [spec.model], spec.periods or [spec.period]
+        ):
+            key = (str(sc), str(mo), str(pe))
+            if key in seen:
+                raise ConfigError(f"{cfg.source}: future {sc} / {mo} / {pe} is listed twice; list each scenario, model and period once")
+            if sc == PRESENT:
+                raise ConfigError(f"{cfg.source}: '{PRESENT}' is reserved for the baseline; rename the scenario in futures.{i}")
+            seen.add(key)
+            fl = {}
+            for name in names:
+                fmt = {"scenario": sc, "model": mo, "period": pe, "factor": name}
+                u = spec.units.get(name)
+                if name in spec.layers:
+                    fl[name] = _ref(spec.layers[name], base, fmt, u)
+                elif spec.pattern:
+                    fl[name] = _ref(_LayerSpec(path=spec.pattern, variable=spec.variable), base, fmt, u)
+                else:
+                    raise ConfigError(
+                        f"{cfg.source}: future {sc} / {mo} / {pe} has no layer for factor '{name}'; "
+                        f"add it to futures.{i}.layers or give a pattern"
+                    )
+            extra = set(spec.layers) - set(names)
+            if extra:
+                raise ConfigError(f"{cfg.source}: futures.{i}.layers names unknown factor(s) {sorted(extra)}; factors are {names}")
+            out.append(Climate(str(sc), str(mo), str(pe), fl))
+    return out

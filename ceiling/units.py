@@ -1,0 +1,67 @@
+"""Units of climate layers: parsing CF/udunits strings and converting to the model's units.
+
+Parsing and conversion go through pint with cf-xarray's udunits-aware registry, so strings
+such as ``"kg m-2 s-1"`` or ``"mm year-1"`` work as they appear in CF files. A precipitation
+flux given as a mass flux (kg m-2 s-1) converts to a depth rate (mm per year) through the
+density of liquid water, 1000 kg m-3 (the CF convention for ``precipitation_flux``).
+"""
+
+from __future__ import annotations
+
+from functools import lru_cache
+
+from .errors import DataError
+
+__all__ = ["linear_conversion", "same_units", "WATER_DENSITY"]
+
+WATER_DENSITY = "1000 kg m-3"
+
+
+@lru_cache(maxsize=1)
+def _registry():
+    import logging
+
+    pint_log = logging.getLogger("pint")
+    level = pint_log.level
+    pint_log.setLevel(logging.ERROR)  # cf-xarray redefines a few units on import, by design
+    try:
+        from cf_xarray.units import units
+    finally:
+        pint_log.setLevel(level)
+    return units
+
+
+def _parse(text: str, where: str):
+    ureg = _registry()
+    try:
+        return ureg.parse_units(str(text).strip())
+    except Exception:
+        raise DataError(f"{where}: units '{text}' are not recognised; use a CF/udunits string such as 'degC', 'K', 'mm year-1'") from None
+
+
+def same_units(a: str, b: str) -> bool:
+    return linear_conversion(a, b, where="units") == (1.0, 0.0)
+
+
+@lru_cache(maxsize=256)
+def linear_conversion(source: str, target: str, *, where: str) -> tuple[float, float]:
+    """(scale, offset) with ``value_in_target = value_in_source * scale + offset``."""
+    ureg = _registry()
+    su, tu = _parse(source, where), _parse(target, where)
+    if su == tu:
+        return 1.0, 0.0
+    q = ureg.Quantity
+    try:
+        a = q(0.0, su).to(tu).magnitude
+        b = q(1.0, su).to(tu).magnitude
+    except Exception:
+        try:  # mass flux of water -> depth rate
+            rho = q(WATER_DENSITY)
+            a = (q(0.0, su) / rho).to(tu).magnitude
+            b = (q(1.0, su) / rho).to(tu).magnitude
+        except Exception:
+            raise DataError(
+                f"{where}: units '{source}' cannot be converted to the model's '{target}'; "
+                "supply the layer in compatible units or fix its units attribute"
+            ) from None
+    return float(b - a), float(a)
