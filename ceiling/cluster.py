@@ -48,20 +48,24 @@ def compute_context(*, workers: int | None = None, address: str | None = None, t
         yield Compute("threads", n, threading.Lock(), kwargs={"scheduler": "threads", "num_workers": n})
         return
     try:
+        import logging
+
         from distributed import Client, LocalCluster, Lock
     except ImportError:
         raise ConfigError("a cluster needs dask.distributed; install it with pip install 'ceiling[distributed]'") from None
+    for name in ("distributed", "distributed.scheduler", "distributed.nanny", "distributed.worker", "distributed.core"):
+        logging.getLogger(name).setLevel(logging.WARNING)
     if address is not None:
         try:
-            client = Client(address, timeout="10s", set_as_default=False)
+            client = Client(address, timeout="10s")
         except OSError as exc:
             raise ConfigError(f"cannot reach the dask scheduler at {address} ({exc}); check the address") from None
         with client:
             n = len(client.scheduler_info().get("workers", {}))
-            yield Compute("cluster", n, Lock("ceiling-write", client=client), client, {"scheduler": client})
+            yield Compute("cluster", n, Lock("ceiling-write"), client, {"scheduler": client})
         return
     if workers < 1:
         raise ConfigError(f"--workers must be at least 1; got {workers}")
     with LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, host="127.0.0.1",
-                      dashboard_address=None, silence_logs=50) as cluster, Client(cluster, set_as_default=False) as client:
-        yield Compute("local-cluster", workers, Lock("ceiling-write", client=client), client, {"scheduler": client})
+                      dashboard_address=None, silence_logs=logging.WARNING) as cluster, Client(cluster) as client:
+        yield Compute("local-cluster", workers, Lock("ceiling-write"), client, {"scheduler": client})

@@ -18,6 +18,7 @@ from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
 
+import dask
 import dask.array as da
 import numpy as np
 import xarray as xr
@@ -111,7 +112,10 @@ def write_netcdf(
         encoding[v] = {"_FillValue": None}
     tmp = tmp_name(path)
     try:
-        ds.to_netcdf(tmp, engine="netcdf4", format="NETCDF4", encoding=encoding)
+        # one chunk after another, in order: HDF5 places chunks in the order they arrive, so a
+        # parallel write would give a different (equally valid) byte layout on every run
+        with dask.config.set(scheduler="synchronous"):
+            ds.to_netcdf(tmp, engine="netcdf4", format="NETCDF4", encoding=encoding)
         os.replace(tmp, path)
     finally:
         if tmp.exists():
