@@ -62,7 +62,7 @@ WARMING = {("ssp245", "2041-2070"): 1.4, ("ssp245", "2071-2100"): 2.0,
 # (relative change at the strongest warming).
 MODEL_TRAITS = {"model-a": (1.0, -0.05, 0.15), "model-b": (1.35, -0.05, 0.20),
                 "model-c": (0.8, 0.0, 0.12)}
-SECONDS_PER_YEAR = 365.25 * 86400.0
+SECONDS_PER_YEAR = 3.15569259747e7  # the UDUNITS year (tropical year), as CF units mean "year"
 
 ZERO_INFLATION = 0.25
 BETA = (2.5, 0.6)

@@ -148,7 +148,7 @@ class BlockReader:
 
     def __init__(
         self, info: LayerInfo, template: GridSpec, *, resampling: str = "bilinear",
-        scale: float = 1.0, offset: float = 0.0, cache_mb: int = 256,
+        scale: float = 1.0, offset: float = 0.0, cache_mb: int = 64,
     ) -> None:
         self.name = info.name
         self.nodata = info.nodata
@@ -186,7 +186,7 @@ class BlockReader:
 
 def open_layer(
     ref: LayerRef, template: GridSpec, *, factor: str, units: str | None, chunk: int = 1024,
-    resampling: str = "bilinear", cache_mb: int = 256,
+    resampling: str = "bilinear", cache_mb: int = 64,
 ) -> xr.DataArray:
     """A lazy, aligned, unit-converted layer on the template grid."""
     info = inspect_layer(ref, factor=factor)

@@ -22,7 +22,7 @@ from .kernels import NODATA_CODE, change_kernel, switch_kernel, zone_kernel
 from .model import CeilingModel
 from .scenarios import Climate, ProjectionOptions
 
-__all__ = ["open_climate", "project", "compare", "climate_stats", "StatsLayout", "model_units"]
+__all__ = ["open_climate", "project", "compare", "climate_stats", "valid_counts", "StatsLayout", "model_units"]
 
 
 def model_units(models: Sequence[CeilingModel], factors: Sequence[str]) -> dict[str, str]:
@@ -181,17 +181,28 @@ def _stats_block(pc, pl, fc, fl, zone, area, layout: StatsLayout) -> np.ndarray:
 
 
 def climate_stats(present: xr.Dataset, future: xr.Dataset, cmp: xr.Dataset, area: da.Array, layouts: Sequence[StatsLayout]) -> list[da.Array]:
-    """Per-species statistic vectors (lazy), reduced over all chunks."""
+    """Per-species statistic vectors per block (lazy): arrays (n_block_rows, n_block_cols, L).
+
+    Summing over the first two axes gives the statistics of the whole grid (or of any group of
+    blocks, which is how the writer reduces them group by group).
+    """
     out = []
     for i, lay in enumerate(layouts):
         def block(pc, pl, fc, fl, z, a, lay=lay):
             return _stats_block(pc, pl, fc, fl, z, a, lay)[None, None, :]
 
-        blocks = da.map_blocks(
+        out.append(da.map_blocks(
             block, present["ceiling"].data[i], present["limiting"].data[i], future["ceiling"].data[i],
             future["limiting"].data[i], cmp["zone"].data[i], area, new_axis=2,
             chunks=(tuple(1 for _ in area.chunks[0]), tuple(1 for _ in area.chunks[1]), (lay.size,)),
             dtype=np.float64,
-        )
-        out.append(blocks.sum(axis=(0, 1)))
+        ))
     return out
+
+
+def valid_counts(arr: da.Array) -> da.Array:
+    """Number of finite cells per block, shape (n_block_rows, n_block_cols)."""
+    return da.map_blocks(
+        lambda a: np.array([[np.isfinite(a).sum()]], dtype=np.int64), arr,
+        chunks=tuple(tuple(1 for _ in c) for c in arr.chunks), dtype=np.int64,
+    )

@@ -37,7 +37,7 @@ from .outputs.atomic import atomic_write_text
 from .outputs.geotiff import WindowTarget, create_tiled, finalize_cog
 from .outputs.netcdf import write_netcdf
 from .outputs.names import NETCDF_FILE, FUTURE_LAYERS, PRESENT_LAYERS, SUMMARY_FILE, TRANSITIONS_FILE, layer_path
-from .projection import StatsLayout, climate_stats, compare, model_units, open_climate, project
+from .projection import StatsLayout, climate_stats, compare, model_units, open_climate, project, valid_counts
 from .scenarios import LayerRef, PRESENT, Climate, ProjectionOptions, climates, projection_options
 
 __all__ = ["ProjectionRun", "RunResult", "run_projection", "project_to_folder", "LAYER_META"]
@@ -153,11 +153,32 @@ def _weighted_median(hist: np.ndarray, lay: StatsLayout) -> float:
     return float(lo + frac * (hi - lo))
 
 
+def _group_size(comp: Compute) -> int:
+    """Chunks per compute: enough to keep every worker busy, few enough to bound memory."""
+    return max(2, 2 * comp.workers) if comp.kind == "threads" else max(4, 4 * comp.workers)
+
+
+def _block_groups(chunks: tuple[tuple[int, ...], ...], *, per_group: int):
+    """((block rows, block cols), (row slice, col slice)) for groups of blocks, row by row."""
+    rows = np.cumsum((0, *chunks[0]))
+    cols = np.cumsum((0, *chunks[1]))
+    for bi in range(len(chunks[0])):
+        for bj0 in range(0, len(chunks[1]), per_group):
+            bj1 = min(bj0 + per_group, len(chunks[1]))
+            yield (bi, bi + 1, bj0, bj1), (slice(int(rows[bi]), int(rows[bi + 1])), slice(int(cols[bj0]), int(cols[bj1])))
+
+
 def _write_climate(
     comp: Compute, stage: Path, grid: GridSpec, climate: Climate, layers: dict[str, da.Array],
     models: Sequence[CeilingModel], factor_lists: list[list[str]], stats, valid, chunk: int,
+    used: Sequence[str], say: Callable[[str], None] | None = None,
 ) -> tuple[list[Path], list[np.ndarray]]:
-    """Stream every map of one climate and reduce its statistics in one compute."""
+    """Stream every map of one climate and reduce its statistics, a group of blocks at a time.
+
+    Each group (a few chunks of one chunk row) is one compute: its maps are written and its
+    statistics reduced before the next group starts, so memory is bounded by the group, not by
+    the grid. Within a group, every chunk of every input is read once for all outputs.
+    """
     sources, targets, finals = [], [], []
     for i, m in enumerate(models):
         for name in layers:
@@ -173,11 +194,21 @@ def _write_climate(
             sources.append(layers[name][i])
             targets.append(WindowTarget(tmp, dtype))
             finals.append((tmp, final, cats, long_name))
-    stored = da.store(sources, targets, lock=comp.lock, compute=False)
-    results = comp.compute(stored, *stats, *valid)
-    vectors = [np.asarray(v) for v in results[1 : 1 + len(stats)]]
-    counts = results[1 + len(stats):]
-    for f, n in zip(climate.layers, counts):
+    vectors = [np.zeros(st.shape[-1]) for st in stats]
+    counts = np.zeros(len(valid), dtype=np.int64)
+    groups = list(_block_groups(sources[0].chunks[-2:], per_group=_group_size(comp)))
+    for g, ((bi0, bi1, bj0, bj1), (rs, cs)) in enumerate(groups, start=1):
+        srcs = [s[rs, cs] for s in sources]
+        stored = da.store(srcs, targets, regions=[(rs, cs)] * len(srcs), lock=comp.lock, compute=False)
+        parts = [st[bi0:bi1, bj0:bj1].sum(axis=(0, 1)) for st in stats]
+        vparts = [v[bi0:bi1, bj0:bj1].sum() for v in valid]
+        res = comp.compute(stored, *parts, *vparts)
+        for k, v in enumerate(res[1 : 1 + len(parts)]):
+            vectors[k] += np.asarray(v)
+        counts += np.asarray(res[1 + len(parts):], dtype=np.int64)
+        if say is not None and len(groups) >= 20 and g % max(1, len(groups) // 10) == 0:
+            say(f"      {climate.label}: {100 * g // len(groups)}% of the grid")
+    for f, n in zip(used, counts):
         if int(n) == 0:
             raise DataError(
                 f"layer of '{f}' for {climate.label} ({climate.layers[f].describe()}) is all nodata inside the "
@@ -223,8 +254,8 @@ def run_projection(
         pres_ds = project(ms, opened[0], mask=mask)
         pres_layers = {n: pres_ds[n].data for n in PRESENT_LAYERS}
         stats = climate_stats(pres_ds, pres_ds, _present_zone(pres_ds), area, layouts)
-        valid = [da.isfinite(opened[0][f].data).sum() for f in used]
-        w, vec = _write_climate(comp, stage, grid, cl[0], pres_layers, ms, factor_lists, stats, valid, opts.chunk)
+        valid = [valid_counts(opened[0][f].data) for f in used]
+        w, vec = _write_climate(comp, stage, grid, cl[0], pres_layers, ms, factor_lists, stats, valid, opts.chunk, used, progress)
         written += w
         r, _ = _stats_rows(ms, cl[0], vec, layouts)
         rows += r
@@ -243,8 +274,8 @@ def run_projection(
             maps = {"ceiling": fut["ceiling"].data, "change": cmp["change"].data, "change_pct": cmp["change_pct"].data,
                     "limiting": fut["limiting"].data, "zone": cmp["zone"].data, "switch": cmp["switch"].data}
             stats = climate_stats(back, fut, cmp, area, layouts)
-            valid = [da.isfinite(lay[f].data).sum() for f in used]
-            w, vec = _write_climate(comp, stage, grid, c, {n: maps[n] for n in FUTURE_LAYERS}, ms, factor_lists, stats, valid, opts.chunk)
+            valid = [valid_counts(lay[f].data) for f in used]
+            w, vec = _write_climate(comp, stage, grid, c, {n: maps[n] for n in FUTURE_LAYERS}, ms, factor_lists, stats, valid, opts.chunk, used, progress)
             written += w
             r, t = _stats_rows(ms, c, vec, layouts)
             rows += r

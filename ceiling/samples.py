@@ -288,7 +288,8 @@ def load_samples(cfg: Any, *, species: Sequence[str] | None = None) -> dict[str,
         )
     frame = pd.DataFrame(values)
     species_col = table["_species"] if "_species" in table else pd.Series(["species"] * n_all)
-    wanted = list(species) if species else list(dict.fromkeys(species_col[keep]))
+    # every species of the survey, also one whose points were all dropped (it must not vanish)
+    wanted = list(species) if species else list(dict.fromkeys(species_col))
     present = set(species_col)
     missing = [sp for sp in wanted if sp not in present]
     if missing:

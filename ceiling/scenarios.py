@@ -121,7 +121,7 @@ class ProjectionOptions(_Strict):
     constraint_threshold: float = Field(default=0.10, ge=0)
     absolute_floor: float = Field(default=0.5, ge=0)
     zero_level: float = Field(default=0.0, ge=0)
-    gdal_cache_mb: int = Field(default=256, ge=16, le=65536)
+    gdal_cache_mb: int = Field(default=64, ge=8, le=65536)
 
     @model_validator(mode="after")
     def _chunk_multiple(self) -> ProjectionOptions:

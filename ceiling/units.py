@@ -4,6 +4,8 @@ Parsing and conversion go through pint with cf-xarray's udunits-aware registry, 
 such as ``"kg m-2 s-1"`` or ``"mm year-1"`` work as they appear in CF files. A precipitation
 flux given as a mass flux (kg m-2 s-1) converts to a depth rate (mm per year) through the
 density of liquid water, 1000 kg m-3 (the CF convention for ``precipitation_flux``).
+A ``year`` is UDUNITS' year, the tropical year of 3.15569259747e7 s (udunits2-common.xml), as CF
+units strings mean it; cf-xarray's registry would otherwise take the Julian year (365.25 days).
 """
 
 from __future__ import annotations
@@ -15,6 +17,7 @@ from .errors import DataError
 __all__ = ["linear_conversion", "same_units", "WATER_DENSITY"]
 
 WATER_DENSITY = "1000 kg m-3"
+UDUNITS_YEAR = "year = 3.15569259747e7 * second = yr"  # udunits2-common.xml: year = tropical year
 
 
 @lru_cache(maxsize=1)
@@ -26,6 +29,10 @@ def _registry():
     pint_log.setLevel(logging.ERROR)  # cf-xarray redefines a few units on import, by design
     try:
         from cf_xarray.units import units
+
+        units.define(UDUNITS_YEAR)
+        if hasattr(units, "_build_cache"):  # drop conversions cached before the redefinition
+            units._build_cache()
     finally:
         pint_log.setLevel(level)
     return units

@@ -24,5 +24,7 @@ def fit(ctx: click.Context, config: Path, out: Path, overwrite: bool, detail: bo
     cfg = load_config(config)
     run, written = fit_to_folder(cfg, out, overwrite=overwrite)
     if not ctx.obj.get("quiet"):
+        for w in run.warnings:  # collected during the fit; one 'warning:' line each on stderr
+            click.echo(f"warning: {w}", err=True)
         click.echo(run.summary(detail=detail))
         click.echo(f"\nwrote {len(written)} files to {out} (model: {out / 'model.json'})")

@@ -19,6 +19,8 @@ from .atomic import TMP_PREFIX
 
 __all__ = ["check_output_folder", "staged_folder"]
 
+LAYER_SUFFIXES = (".tif", ".tiff", ".nc", ".vrt", ".img")
+
 
 def check_output_folder(out: Path, *, overwrite: bool, inputs: Sequence[Path] = ()) -> None:
     """Refuse an unusable output folder before any work is done."""
@@ -34,9 +36,10 @@ def check_output_folder(out: Path, *, overwrite: bool, inputs: Sequence[Path] = 
             raise OutputError(
                 f"output folder {out} contains the input {p}; replacing it would delete the input: choose another --out"
             )
-        if resolved.is_relative_to(folder) and Path(p).suffix.lower() in (".tif", ".tiff", ".nc", ".csv", ".gpkg"):
+        # outputs inside a folder of climate layers would mix with them (and with any pattern over them)
+        if resolved.is_relative_to(folder) and Path(p).suffix.lower() in LAYER_SUFFIXES:
             raise OutputError(
-                f"output folder {out} lies inside the input folder {folder}; write outputs outside the input data"
+                f"output folder {out} lies inside the layer folder {folder}; write outputs outside the input layers"
             )
     parent = resolved.parent
     while not parent.exists():

@@ -1,7 +1,7 @@
 """GeoTIFF outputs: streamed tiled writes, then a cloud-optimised copy with category names.
 
-1. :func:`create_tiled` makes an empty tiled GeoTIFF under a temporary name (sparse, so untouched
-   tiles cost nothing), with the template's CRS and transform, nodata, band description, units and,
+1. :func:`create_tiled` makes an empty tiled, uncompressed GeoTIFF under a temporary name (sparse,
+   so untouched tiles cost nothing; uncompressed, so the data are compressed once, by the COG copy), with the template's CRS and transform, nodata, band description, units and,
    for categorical layers, the colour table.
 2. :class:`WindowTarget` is a dask ``store`` target: each chunk is written into its window,
    under a lock, so the write streams and memory stays bounded by the chunk size.
@@ -57,8 +57,7 @@ def create_tiled(
     profile = dict(
         driver="GTiff", width=grid.width, height=grid.height, count=1, dtype=dtype,
         crs=grid.crs, transform=grid.affine, nodata=nodata, tiled=True, blockxsize=stream_tile(chunk),
-        blockysize=stream_tile(chunk), compress="deflate", predictor=3 if dtype == "float32" else 2,
-        SPARSE_OK="TRUE", BIGTIFF="IF_SAFER",
+        blockysize=stream_tile(chunk), compress="none", SPARSE_OK="TRUE", BIGTIFF="IF_SAFER",
     )
     with rasterio.Env(GDAL_PAM_ENABLED="NO"), rasterio.open(path, "w", **profile) as dst:
         dst.set_band_description(1, description)
@@ -115,12 +114,13 @@ def finalize_cog(
 ) -> list[Path]:
     """Copy the streamed file to a COG at ``final`` (atomically); return the files written."""
     staging = tmp_name(final)
-    with rasterio.Env(GDAL_PAM_ENABLED="NO", GDAL_CACHEMAX=256):
+    with rasterio.Env(GDAL_PAM_ENABLED="NO", GDAL_CACHEMAX=64):
         with rasterio.open(tmp) as src:
             block = cog_block(src.width, src.height)
         rasterio.shutil.copy(
             str(tmp), str(staging), driver="COG", COMPRESS="DEFLATE", PREDICTOR="YES", BLOCKSIZE=block,
             OVERVIEW_RESAMPLING="NEAREST" if categorical else "AVERAGE", BIGTIFF="IF_SAFER",
+            NUM_THREADS="ALL_CPUS",
         )
     os.replace(staging, final)
     written = [final]
