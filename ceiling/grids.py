@@ -162,22 +162,31 @@ class BlockReader:
         self.dtype = np.dtype("float32")
         self.ndim = 2
 
+    def _read(self, window: Window) -> np.ma.MaskedArray:
+        with rasterio.Env(GDAL_CACHEMAX=self.cache_mb, GDAL_PAM_ENABLED="NO"), rasterio.open(self.name) as src:
+            if self.aligned:
+                return src.read(1, window=window, masked=True)
+            with WarpedVRT(
+                src, crs=self.template.crs, transform=self.template.affine,
+                width=self.template.width, height=self.template.height,
+                resampling=Resampling[self.resampling], src_nodata=self.nodata, nodata=np.nan,
+                dtype="float32",
+            ) as vrt:
+                return vrt.read(1, window=window, masked=True)
+
     def __getitem__(self, key: Any) -> np.ndarray:
         rows, cols = key
         r0, r1, _ = rows.indices(self.shape[0])
         c0, c1, _ = cols.indices(self.shape[1])
         window = Window(c0, r0, c1 - c0, r1 - r0)
-        with rasterio.Env(GDAL_CACHEMAX=self.cache_mb, GDAL_PAM_ENABLED="NO"), rasterio.open(self.name) as src:
-            if self.aligned:
-                data = src.read(1, window=window, masked=True)
-            else:
-                with WarpedVRT(
-                    src, crs=self.template.crs, transform=self.template.affine,
-                    width=self.template.width, height=self.template.height,
-                    resampling=Resampling[self.resampling], src_nodata=self.nodata, nodata=np.nan,
-                    dtype="float32",
-                ) as vrt:
-                    data = vrt.read(1, window=window, masked=True)
+        try:
+            data = self._read(window)
+        except (RasterioIOError, rasterio.errors.WarpOperationError) as exc:
+            detail = str(exc.__cause__ or exc.__context__ or exc).splitlines()[0]
+            raise InputFileError(
+                f"layer {self.name}: reading rows {r0}-{r1}, columns {c0}-{c1} failed ({detail}); the file is "
+                "truncated or corrupt: re-create or re-download it"
+            ) from None
         out = np.ma.filled(data.astype(np.float64), np.nan)
         if self.scale != 1.0 or self.offset != 0.0:
             out = out * self.scale + self.offset

@@ -25,6 +25,7 @@ Relative paths are resolved against the config's folder. The projection options
 
 from __future__ import annotations
 
+import difflib
 import itertools
 from dataclasses import dataclass
 from pathlib import Path
@@ -134,7 +135,18 @@ def _validate(model: type[BaseModel], data: Any, where: str, source: Any):
     try:
         return model.model_validate(data if data is not None else {})
     except ValidationError as exc:
-        err = exc.errors()[0]
+        errors = exc.errors()
+        extra = [e for e in errors if e.get("type") == "extra_forbidden"]
+        err = (extra or errors)[0]
+        if extra:  # suggest a key of this section (config's own lookup knows only its sections)
+            loc = tuple(err.get("loc", ()))
+            section = _LayerSpec if "_LayerSpec" in loc else model
+            loc = tuple(p for p in loc if p not in ("_LayerSpec", "str"))
+            allowed = list(section.model_fields)
+            close = difflib.get_close_matches(str(loc[-1]), allowed, n=1, cutoff=0.5)
+            hint = f"did you mean '{close[0]}'?" if close else f"valid keys: {', '.join(allowed)}"
+            dotted = ".".join(str(p) for p in (where, *loc))
+            raise ConfigError(f"{source or 'config'}: unknown key '{dotted}'; {hint}") from None
         err = {**err, "loc": (where, *err.get("loc", ()))}
         msg = _format_error(err, source or "config")
         raise ConfigError(msg) from None

@@ -53,6 +53,10 @@ class LinearBasis(_Scaled):
         z = self._z(x)
         return np.stack([np.ones_like(z), z], axis=-1)
 
+    def predictor(self, x: np.ndarray, coef: np.ndarray) -> np.ndarray:
+        """``design(x) @ coef`` without building the design matrix."""
+        return coef[0] + coef[1] * self._z(x)
+
     def to_dict(self) -> dict[str, Any]:
         return {"name": self.name, "center": self.center, "scale": self.scale}
 
@@ -70,6 +74,11 @@ class QuadraticBasis(_Scaled):
     def design(self, x: np.ndarray) -> np.ndarray:
         z = self._z(x)
         return np.stack([np.ones_like(z), z, z * z], axis=-1)
+
+    def predictor(self, x: np.ndarray, coef: np.ndarray) -> np.ndarray:
+        """``design(x) @ coef`` by Horner's rule, without building the design matrix."""
+        z = self._z(x)
+        return coef[0] + z * (coef[1] + z * coef[2])
 
     def to_dict(self) -> dict[str, Any]:
         return {"name": self.name, "center": self.center, "scale": self.scale}
@@ -109,6 +118,9 @@ class SplineBasis(_Scaled):
             d_last = d(len(k) - 2)
             cols += [d(j) - d_last for j in range(len(k) - 2)]
         return np.stack(cols, axis=-1)
+
+    def predictor(self, x: np.ndarray, coef: np.ndarray) -> np.ndarray:
+        return self.design(x) @ coef
 
     def to_dict(self) -> dict[str, Any]:
         return {

@@ -63,7 +63,7 @@ class FactorCeiling:
     def linear_predictor(self, x: np.ndarray, *, median: bool = False) -> np.ndarray:
         """Unclipped predictor in the transformed response scale (NaN stays NaN)."""
         coef = self.median_params if median else self.params
-        return self.basis.design(self._x(x)) @ coef
+        return self.basis.predictor(self._x(x), coef)
 
     def predict(self, x: np.ndarray) -> np.ndarray:
         """The ceiling in abundance units (>= 0)."""

@@ -7,8 +7,7 @@ from pathlib import Path
 import click
 
 from ..outputs.folder import check_output_folder, staged_folder
-from .main import handle_errors
-from .options import out_opt, overwrite_opt
+from .options import handle_errors, out_opt, overwrite_opt
 
 
 @click.command("demo")

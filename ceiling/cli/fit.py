@@ -8,8 +8,7 @@ import click
 
 from ..config import load_config
 from ..fitting import fit_to_folder
-from .main import handle_errors
-from .options import config_arg, out_opt, overwrite_opt
+from .options import handle_errors, config_arg, out_opt, overwrite_opt
 
 
 @click.command("fit")

@@ -8,38 +8,12 @@ warnings are printed as one ``warning:`` line each.
 from __future__ import annotations
 
 import logging
-import sys
 import warnings
-from collections.abc import Callable
-from functools import wraps
-from typing import Any
 
 import click
 
 from .. import __version__
-from ..errors import CeilingError, CeilingWarning
-
-EXIT_BAD_INPUT = 2
-
-
-def _show_warning(message: Any, category: type[Warning], *args: Any, **kwargs: Any) -> None:
-    if issubclass(category, CeilingWarning):
-        click.echo(f"warning: {' '.join(str(message).split())}", err=True)
-
-
-def handle_errors(fn: Callable[..., Any]) -> Callable[..., Any]:
-    """Turn the tool's own errors into one line on stderr and exit code 2."""
-
-    @wraps(fn)
-    def wrapper(*args: Any, **kwargs: Any) -> Any:
-        try:
-            return fn(*args, **kwargs)
-        except CeilingError as exc:
-            click.echo(f"error: {exc}", err=True)
-            sys.exit(EXIT_BAD_INPUT)
-
-    return wrapper
-
+from .options import show_warning
 
 @click.group(context_settings={"help_option_names": ["-h", "--help"]})
 @click.version_option(__version__, prog_name="ceiling")
@@ -51,7 +25,7 @@ def cli(ctx: click.Context, verbose: int, quiet: bool) -> None:
     level = logging.ERROR if quiet else (logging.DEBUG if verbose > 1 else logging.INFO if verbose else logging.WARNING)
     logging.basicConfig(level=level, format="%(levelname)s: %(message)s")
     ctx.obj = {"quiet": quiet}
-    warnings.showwarning = _show_warning
+    warnings.showwarning = show_warning
 
 
 def _register() -> None:
@@ -72,5 +46,3 @@ def main(argv: list[str] | None = None) -> None:
     cli.main(args=argv, prog_name="ceiling")
 
 
-if __name__ == "__main__":  # pragma: no cover
-    main()

@@ -8,8 +8,7 @@ import click
 
 from ..config import load_config
 from ..running import project_to_folder
-from .main import handle_errors
-from .options import config_arg, out_opt, overwrite_opt
+from .options import handle_errors, config_arg, out_opt, overwrite_opt
 
 compute_opts = [
     click.option("--workers", type=int, default=None, help="Start a local dask.distributed cluster with N worker processes (loopback)."),
@@ -32,6 +31,8 @@ def _run(ctx: click.Context, config: Path, out: Path, model: Path | None, overwr
         progress=None if quiet else (lambda s: click.echo(s, err=True)),
     )
     if not quiet:
+        for w in (res.fit.warnings if res.fit is not None else []):
+            click.echo(f"warning: {w}", err=True)
         click.echo(res.summary())
 
 

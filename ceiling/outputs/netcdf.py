@@ -19,6 +19,7 @@ from pathlib import Path
 from typing import Any
 
 import dask
+import netCDF4
 import dask.array as da
 import numpy as np
 import xarray as xr
@@ -30,6 +31,8 @@ from .atomic import tmp_name
 from .geotiff import FLOAT_NODATA
 
 __all__ = ["write_netcdf", "flag_meaning"]
+
+CHUNK_CACHE_BYTES = 4 * 1024 * 1024
 
 
 def flag_meaning(name: str) -> str:
@@ -114,6 +117,9 @@ def write_netcdf(
     try:
         # one chunk after another, in order: HDF5 places chunks in the order they arrive, so a
         # parallel write would give a different (equally valid) byte layout on every run
+        # and with a small HDF5 chunk cache: the default is per variable, so it would grow with the
+        # number of variables up to hundreds of MB
+        netCDF4.set_chunk_cache(CHUNK_CACHE_BYTES, 1009, 0.75)
         with dask.config.set(scheduler="synchronous"):
             ds.to_netcdf(tmp, engine="netcdf4", format="NETCDF4", encoding=encoding)
         os.replace(tmp, path)
