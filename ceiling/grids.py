@@ -16,10 +16,10 @@ from pathlib import Path
 from typing import Any
 
 import dask.array as da
-from dask.base import tokenize
 import numpy as np
 import rasterio
 import xarray as xr
+from dask.base import tokenize
 from rasterio.enums import Resampling
 from rasterio.errors import RasterioIOError
 from rasterio.vrt import WarpedVRT
@@ -133,11 +133,11 @@ def _overlaps(src_grid: GridSpec, tpl: GridSpec) -> bool:
     from rasterio.warp import transform_bounds
 
     try:
-        l, b, r, t = transform_bounds(src_grid.crs, tpl.crs, *src_grid.bounds, densify_pts=21)
+        west, south, east, north = transform_bounds(src_grid.crs, tpl.crs, *src_grid.bounds, densify_pts=21)
     except Exception:
         return True  # cannot tell; the warp will produce nodata where it does not overlap
-    L, B, R, T = tpl.bounds
-    return l < R and r > L and b < T and t > B
+    w2, s2, e2, n2 = tpl.bounds
+    return west < e2 and east > w2 and south < n2 and north > s2
 
 
 class BlockReader:

@@ -23,7 +23,8 @@ VECTOR = {".gpkg", ".shp", ".geojson", ".json", ".fgb"}
 
 def _rasterise_block(geoms, transform, block_info=None):
     from rasterio.features import geometry_mask
-    from rasterio.windows import Window, transform as wtransform
+    from rasterio.windows import Window
+    from rasterio.windows import transform as wtransform
 
     (r0, r1), (c0, c1) = block_info[None]["array-location"]
     win = Window(c0, r0, c1 - c0, r1 - r0)

@@ -35,10 +35,25 @@ from .kernels import NODATA_CODE
 from .model import CeilingModel, ModelSet
 from .outputs.atomic import atomic_write_text
 from .outputs.geotiff import WindowTarget, create_tiled, finalize_cog
+from .outputs.names import (
+    FUTURE_LAYERS,
+    NETCDF_FILE,
+    PRESENT_LAYERS,
+    SUMMARY_FILE,
+    TRANSITIONS_FILE,
+    layer_path,
+)
 from .outputs.netcdf import write_netcdf
-from .outputs.names import NETCDF_FILE, FUTURE_LAYERS, PRESENT_LAYERS, SUMMARY_FILE, TRANSITIONS_FILE, layer_path
-from .projection import StatsLayout, climate_stats, compare, model_units, open_climate, project, valid_counts
-from .scenarios import LayerRef, PRESENT, Climate, ProjectionOptions, climates, projection_options
+from .projection import (
+    StatsLayout,
+    climate_stats,
+    compare,
+    model_units,
+    open_climate,
+    project,
+    valid_counts,
+)
+from .scenarios import PRESENT, Climate, LayerRef, ProjectionOptions, climates, projection_options
 
 __all__ = ["ProjectionRun", "RunResult", "run_projection", "project_to_folder", "LAYER_META"]
 

@@ -8,7 +8,7 @@ import click
 
 from ..config import load_config
 from ..fitting import fit_to_folder
-from .options import handle_errors, config_arg, out_opt, overwrite_opt
+from .options import config_arg, handle_errors, out_opt, overwrite_opt
 
 
 @click.command("fit")

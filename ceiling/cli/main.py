@@ -15,6 +15,7 @@ import click
 from .. import __version__
 from .options import show_warning
 
+
 @click.group(context_settings={"help_option_names": ["-h", "--help"]})
 @click.version_option(__version__, prog_name="ceiling")
 @click.option("-v", "--verbose", count=True, help="More log output (repeat for debug).")

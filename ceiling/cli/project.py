@@ -8,7 +8,7 @@ import click
 
 from ..config import load_config
 from ..running import project_to_folder
-from .options import handle_errors, config_arg, out_opt, overwrite_opt
+from .options import config_arg, handle_errors, out_opt, overwrite_opt
 
 compute_opts = [
     click.option("--workers", type=int, default=None, help="Start a local dask.distributed cluster with N worker processes (loopback)."),

@@ -19,8 +19,8 @@ from pathlib import Path
 from typing import Any
 
 import dask
-import netCDF4
 import dask.array as da
+import netCDF4
 import numpy as np
 import xarray as xr
 from pyproj import CRS
