@@ -11,7 +11,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-__all__ = ["Category", "ZONES", "ZONE_CODE", "FACTOR_COLOURS", "NODATA_COLOUR", "factor_categories",
+__all__ = ["Category", "ZONES", "ZONE_CODE", "ENSEMBLE_ZONES", "ROBUSTNESS", "EXTRAPOLATION", "FACTOR_COLOURS", "NODATA_COLOUR", "factor_categories",
            "switch_categories", "switch_code", "hex_to_rgba"]
 
 NODATA_COLOUR = "#00000000"
@@ -34,6 +34,20 @@ ZONES: tuple[Category, ...] = (
     Category(5, "absent", "#f7f7f7", "zero now and later"),
 )
 ZONE_CODE = {c.name: c.code for c in ZONES}
+
+# the ensemble zone map adds one class: release or constraint on whose sign the models disagree
+ENSEMBLE_ZONES: tuple[Category, ...] = (
+    *ZONES,
+    Category(6, "uncertain", "#c2a5cf", "release or constraint in the median, but the models disagree on the sign"),
+)
+ROBUSTNESS: tuple[Category, ...] = (
+    Category(0, "low agreement", "#bababa", "fewer models than the threshold agree on the sign of the change"),
+    Category(1, "robust", "#4d4d4d", "at least the threshold share of models agree on the sign of the change"),
+)
+EXTRAPOLATION: tuple[Category, ...] = (
+    Category(0, "within sampled range", "#f0f0f0", "MESS >= 0: every factor within the survey's range"),
+    Category(1, "novel climate", "#762a83", "MESS < 0: at least one factor outside the survey's range"),
+)
 
 FACTOR_COLOURS = ("#E69F00", "#56B4E9", "#009E73", "#F0E442", "#0072B2", "#D55E00", "#CC79A7", "#999999")
 

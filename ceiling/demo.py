@@ -340,7 +340,7 @@ rows, north-up. Land is {100 * land_share:.1f} % of the cells; sea cells are nod
 - `future/{{scenario}}/model-c/{{period}}.nc`: CF-1.10 NetCDF, one variable per factor on
   dims (lat, lon), **lat descending** (north first, as the GeoTIFFs), cell-centre coordinates,
   `_FillValue` -9999, grid mapping `crs`. Units differ on purpose: temperatures in `K`,
-  precipitation as a flux in `kg m-2 s-1` (= mm year-1 / 31557600), moisture `1`.
+  precipitation as a flux in `kg m-2 s-1` (= mm year-1 / 31556925.9747, seconds in the UDUNITS year), moisture `1`.
 - `survey.csv`: `site_id,species,lon,lat,count`, one row per site and species; each species
   was surveyed at its own random land sites.
 - `truth.json`: the true ceiling curve of every species and factor, and the noise model.

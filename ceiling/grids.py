@@ -79,6 +79,10 @@ class LayerInfo:
     nodata: float | None
     dtype: str
     units: str | None
+    # packing (CF scale_factor / add_offset, GDAL band scale / offset): GDAL reads the stored
+    # values, so the reader unpacks them: value = stored * scale + offset
+    scale: float = 1.0
+    offset: float = 0.0
 
 
 def gdal_name(ref: LayerRef) -> str:
@@ -120,7 +124,9 @@ def inspect_layer(ref: LayerRef, *, factor: str) -> LayerInfo:
                 raise DataError(f"{where}: the grid is not north-up (transform {tuple(t)[:6]}); warp it first")
             units = ref.units or (src.units[0] if src.units and src.units[0] else None) or src.tags(1).get("units")
             grid = GridSpec(src.crs.to_wkt(), tuple(t)[:6], src.width, src.height)  # type: ignore[arg-type]
-            return LayerInfo(gdal_name(ref), grid, src.nodata, src.dtypes[0], units or None)
+            pack_scale = float(src.scales[0]) if src.scales and src.scales[0] is not None else 1.0
+            pack_offset = float(src.offsets[0]) if src.offsets and src.offsets[0] is not None else 0.0
+            return LayerInfo(gdal_name(ref), grid, src.nodata, src.dtypes[0], units or None, pack_scale, pack_offset)
     except RasterioIOError as exc:
         raise InputFileError(f"{where}: cannot be opened as a raster ({str(exc).splitlines()[0]}); is it a complete GeoTIFF or NetCDF?") from None
 
@@ -208,6 +214,8 @@ def open_layer(
         raise DataError(f"{where}: has no units; set a 'units' attribute on the layer or units for it in the config (model units: '{units}')")
     else:
         scale, offset = linear_conversion(info.units, units, where=where)
+    # unpack first, then convert: (stored * s + o) * scale + offset
+    scale, offset = info.scale * scale, info.offset * scale + offset
     if np.dtype(info.dtype).kind in "iu" and info.nodata is None:
         pass  # integer layers without nodata are used as they are
     reader = BlockReader(info, template, resampling=resampling, scale=scale, offset=offset, cache_mb=cache_mb)

@@ -189,7 +189,8 @@ def _open_layer(path: Path):
     if not Path(path).is_file():
         raise InputFileError(f"layer file not found: {path}; check the factor's 'layer' path")
     try:
-        da = rioxarray.open_rasterio(path, masked=True, chunks={"x": 1024, "y": 1024})
+        # mask_and_scale: unpack stored values (scale_factor / add_offset) as the projection does
+        da = rioxarray.open_rasterio(path, masked=True, mask_and_scale=True, chunks={"x": 1024, "y": 1024})
     except Exception as exc:
         raise InputFileError(f"{path}: cannot open the layer ({str(exc).splitlines()[0]}); is it a GeoTIFF or NetCDF?") from None
     if isinstance(da, list | xr.Dataset):
