@@ -8,6 +8,7 @@ suggested; every bad value gets the same kind of one-line message naming the fie
 from __future__ import annotations
 
 import difflib
+import math
 import tomllib
 from pathlib import Path
 from typing import Any, Literal
@@ -17,6 +18,7 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_valida
 from .errors import ConfigError, InputFileError
 
 __all__ = [
+    "MIN_REPLICATES",
     "RunConfig",
     "SurveyConfig",
     "FactorConfig",
@@ -30,6 +32,9 @@ Estimator = Literal["quantile", "binned"]
 Transform = Literal["none", "log1p", "sqrt"]
 Outside = Literal["hold", "extend"]
 Sampling = Literal["nearest", "bilinear"]
+
+# percentile bounds from fewer bootstrap replicates than this are too coarse to report
+MIN_REPLICATES = 20
 
 
 class _Section(BaseModel):
@@ -83,6 +88,30 @@ class FitConfig(_Section):
     wedge_alpha: float = Field(default=0.05, gt=0, lt=1)
     seed: int = 0
     species: list[str] | None = None
+    bootstrap: int = Field(default=0, le=100_000)
+    bootstrap_block: float | None = None
+    bootstrap_seed: int = 0
+
+    @field_validator("bootstrap")
+    @classmethod
+    def _enough_replicates(cls, v: int) -> int:
+        if v != 0 and v < MIN_REPLICATES:
+            raise ValueError(
+                f"bounds need at least {MIN_REPLICATES} replicates; got {v}; set fit.bootstrap "
+                f"to 0 (no bootstrap) or to {MIN_REPLICATES} or more (200 is usual)"
+            )
+        return v
+
+    @field_validator("bootstrap_block")
+    @classmethod
+    def _positive_block(cls, v: float | None) -> float | None:
+        if v is not None and not (math.isfinite(v) and v > 0):
+            raise ValueError(
+                f"the bootstrap block size must be a positive number of map units of the survey "
+                f"CRS; got {v}; set fit.bootstrap_block to the side of a square block, or leave it "
+                "out to resample single points"
+            )
+        return v
 
     @field_validator("tau")
     @classmethod

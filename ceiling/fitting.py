@@ -24,6 +24,7 @@ from .outputs.atomic import atomic_write_text
 from .outputs.folder import check_output_folder, staged_folder
 from .outputs.names import DIAGNOSTICS_FILE, MODEL_FILE, fit_figure_name, fit_panel_name
 from .samples import Samples, load_samples
+from .uncertainty import bootstrap_model
 
 __all__ = ["FitRun", "fit_config", "write_fit", "fit_to_folder", "factor_specs", "config_inputs"]
 
@@ -90,7 +91,12 @@ def _sha256(path: Path | None) -> str | None:
 
 
 def fit_config(cfg: RunConfig) -> FitRun:
-    """Fit every species of the config's survey (or ``fit.species``)."""
+    """Fit every species of the config's survey (or ``fit.species``).
+
+    With ``fit.bootstrap`` > 0 each species' model also carries that many bootstrap
+    replicates (:func:`ceiling.uncertainty.bootstrap_model`, seeded by ``fit.bootstrap_seed``,
+    resampling spatial blocks of ``fit.bootstrap_block`` map units when set).
+    """
     for f in cfg.factors:
         if f.layer is not None and not Path(f.layer).is_file():
             raise InputFileError(f"layer file not found for factor '{f.name}': {f.layer}; check factors.layer in the config")
@@ -108,6 +114,11 @@ def fit_config(cfg: RunConfig) -> FitRun:
                 wedge_replicates=cfg.fit.wedge_replicates, wedge_alpha=cfg.fit.wedge_alpha,
                 seed=cfg.fit.seed,
             )
+            if cfg.fit.bootstrap > 0:
+                models[sp] = bootstrap_model(
+                    models[sp], s, replicates=cfg.fit.bootstrap, seed=cfg.fit.bootstrap_seed,
+                    block=cfg.fit.bootstrap_block, bins={f.name: f.bins for f in specs},
+                )
     for w in caught:
         if issubclass(w.category, CeilingWarning):
             caught_all.append(" ".join(str(w.message).split()))

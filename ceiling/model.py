@@ -20,6 +20,7 @@ import pandas as pd
 
 from . import __version__
 from .boundary import FactorCeiling, fit_factor
+from .config import MIN_REPLICATES
 from .errors import FitError, InputFileError, ModelFileError
 from .kernels import combine_minimum
 from .outputs.atomic import atomic_write_text
@@ -65,10 +66,23 @@ class CeilingModel:
     outside: str
     n_points: int = 0
     dropped: Mapping[str, int] = field(default_factory=dict)
+    # bootstrap replicates (ceiling.uncertainty.bootstrap_model): factor name -> array
+    # (replicates, n_params) of coefficients in that factor's basis, and the settings used
+    replicates: Mapping[str, np.ndarray] | None = None
+    bootstrap: Mapping[str, Any] | None = None
+    # the reference sample for novelty (MESS): factor name -> sorted values at the survey points
+    reference: Mapping[str, np.ndarray] | None = None
 
     @property
     def factor_names(self) -> list[str]:
         return [f.factor for f in self.factors]
+
+    @property
+    def n_replicates(self) -> int:
+        """Number of bootstrap replicates held (0 without a bootstrap)."""
+        if not self.replicates:
+            return 0
+        return int(next(iter(self.replicates.values())).shape[0])
 
     def __getitem__(self, name: str) -> FactorCeiling:
         for f in self.factors:
@@ -149,10 +163,15 @@ class CeilingModel:
         if dropped:
             parts = ", ".join(f"{k}: {v}" for k, v in self.dropped.items() if v)
             head += f"; {dropped} dropped ({parts})"
+        if self.n_replicates:
+            meta = dict(self.bootstrap or {})
+            how = (f"spatial blocks of {meta['block']:g} map units" if meta.get("block")
+                   else "survey points")
+            head += f"; {self.n_replicates} bootstrap replicates (resampling {how}, seed {meta.get('seed', 0)})"
         return "\n".join([head] + [f.summary() for f in self.factors])
 
     def to_dict(self) -> dict[str, Any]:
-        return {
+        out = {
             "tau": self.tau,
             "transform": self.transform,
             "outside": self.outside,
@@ -160,6 +179,17 @@ class CeilingModel:
             "dropped": dict(self.dropped),
             "factors": [f.to_dict() for f in self.factors],
         }
+        if self.reference:
+            out["reference"] = {k: [float(v) for v in np.asarray(a)] for k, a in self.reference.items()}
+        if self.n_replicates:
+            boot = {k: v for k, v in dict(self.bootstrap or {}).items() if k != "coefficients"}
+            boot["replicates"] = self.n_replicates
+            boot["coefficients"] = {
+                f.factor: [[float(v) for v in row] for row in np.asarray(self.replicates[f.factor], dtype=np.float64)]
+                for f in self.factors
+            }
+            out["bootstrap"] = boot
+        return out
 
     def save(self, path: str | Path, *, provenance: Mapping[str, Any] | None = None) -> Path:
         return ModelSet({self.species: self}, dict(provenance or {})).save(path)
@@ -255,13 +285,78 @@ def fit(
         outside=outside,
         n_points=int(y.size),
         dropped=dict(getattr(samples, "dropped", {}) or {}),
+        reference={s.name: _sorted_finite(values[s.name]) for s in specs},
     )
+
+
+def _sorted_finite(v: Any) -> np.ndarray:
+    a = np.asarray(v, dtype=np.float64)
+    return np.sort(a[np.isfinite(a)])
+
+
+def _parse_reference(ref: Any, names: Sequence[str], where: str) -> dict[str, np.ndarray] | None:
+    """Validate a species' optional 'reference' section (factor -> list of numbers)."""
+    if ref is None:
+        return None
+    fix = "re-create the model file with 'ceiling fit'"
+    if not isinstance(ref, Mapping):
+        raise ModelFileError(f"{where}: 'reference' must map factor names to lists of numbers; {fix}")
+    out = {}
+    for name in names:
+        vals = ref.get(name)
+        if not isinstance(vals, list) or not vals or not all(isinstance(v, int | float) and not isinstance(v, bool) for v in vals):
+            raise ModelFileError(f"{where}: 'reference.{name}' must be a non-empty list of numbers; {fix}")
+        out[name] = _sorted_finite(vals)
+    return out
 
 
 def _need(d: Mapping[str, Any], key: str, where: str) -> Any:
     if not isinstance(d, Mapping) or key not in d:
         raise ModelFileError(f"{where}: field '{key}' is missing; re-create the model file with 'ceiling fit'")
     return d[key]
+
+
+def _parse_bootstrap(
+    boot: Any, factors: Sequence[FactorCeiling], where: str
+) -> tuple[dict[str, np.ndarray] | None, dict[str, Any] | None]:
+    """Validate a species' optional 'bootstrap' section: replicate coefficients per factor."""
+    if boot is None:
+        return None, None
+    w = f"{where}: 'bootstrap'"
+    fix = "re-create the model file with 'ceiling fit' (fit.bootstrap)"
+    if not isinstance(boot, Mapping):
+        raise ModelFileError(f"{w} must be a table of bootstrap settings and coefficients; {fix}")
+    n_rep = _need(boot, "replicates", w)
+    if isinstance(n_rep, bool) or not isinstance(n_rep, int) or n_rep < MIN_REPLICATES:
+        raise ModelFileError(
+            f"{w}: 'replicates' must be an integer of at least {MIN_REPLICATES}; got {n_rep!r}; {fix}"
+        )
+    coefs = _need(boot, "coefficients", w)
+    names = [f.factor for f in factors]
+    if not isinstance(coefs, Mapping) or sorted(coefs) != sorted(names):
+        got = sorted(coefs) if isinstance(coefs, Mapping) else type(coefs).__name__
+        raise ModelFileError(f"{w}: 'coefficients' must map every factor ({', '.join(names)}) to replicates; got {got}; {fix}")
+    out: dict[str, np.ndarray] = {}
+    for f in factors:
+        raw = coefs[f.factor]
+        fw = f"{w} 'coefficients' of factor '{f.factor}'"
+        shape = (n_rep, f.basis.n_params)
+        rows_ok = isinstance(raw, list) and len(raw) == n_rep and all(
+            isinstance(r, list) and len(r) == f.basis.n_params for r in raw
+        )
+        if not rows_ok:
+            raise ModelFileError(
+                f"{fw}: must be {shape[0]} rows (replicates) of {shape[1]} numbers (the "
+                f"{f.basis.name} basis); {fix}"
+            )
+        if not all(isinstance(v, int | float) and not isinstance(v, bool) for r in raw for v in r):
+            raise ModelFileError(f"{fw}: holds a non-number; {fix}")
+        arr = np.array(raw, dtype=np.float64).reshape(shape)
+        if not np.all(np.isfinite(arr)):
+            raise ModelFileError(f"{fw}: holds a non-finite number; {fix}")
+        out[f.factor] = arr
+    meta = {k: v for k, v in boot.items() if k != "coefficients"}
+    return out, meta
 
 
 def _parse(data: Any, where: str) -> ModelSet:
@@ -312,9 +407,12 @@ def _parse(data: Any, where: str) -> ModelSet:
         names = [f.factor for f in factors]
         if len(set(names)) != len(names):
             raise ModelFileError(f"{w}: factor names repeat ({names}); each factor must appear once")
+        replicates, boot = _parse_bootstrap(m.get("bootstrap"), factors, w)
         models[str(name)] = CeilingModel(
             species=str(name), factors=tuple(factors), tau=float(tau), transform=transform,
             outside=outside, n_points=int(m.get("n_points", 0)), dropped=dict(m.get("dropped", {})),
+            replicates=replicates, bootstrap=boot,
+            reference=_parse_reference(m.get("reference"), [f.factor for f in factors], w),
         )
     return ModelSet(models, dict(data.get("provenance", {})))
 

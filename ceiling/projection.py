@@ -10,7 +10,7 @@ reduces a comparison to areas per class in the same pass. Nothing here computes:
 from __future__ import annotations
 
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import dask.array as da
 import numpy as np
@@ -20,9 +20,10 @@ from .errors import DataError
 from .grids import GridSpec, open_layer
 from .kernels import NODATA_CODE, change_kernel, switch_kernel, zone_kernel
 from .model import CeilingModel
+from .novelty import check_reference, mess_kernel
 from .scenarios import Climate, ProjectionOptions
 
-__all__ = ["open_climate", "project", "compare", "climate_stats", "valid_counts", "StatsLayout", "model_units"]
+__all__ = ["open_climate", "project", "novel_rule", "with_policy", "compare", "climate_stats", "valid_counts", "StatsLayout", "model_units"]
 
 
 def model_units(models: Sequence[CeilingModel], factors: Sequence[str]) -> dict[str, str]:
@@ -54,7 +55,10 @@ def open_climate(
     }
 
 
-def _project_block(*blocks: np.ndarray, factors: tuple[str, ...], models: tuple[CeilingModel, ...], has_mask: bool) -> np.ndarray:
+def _project_block(
+    *blocks: np.ndarray, factors: tuple[str, ...], models: tuple[CeilingModel, ...], has_mask: bool,
+    novel: str | None,
+) -> np.ndarray:
     arrays = list(blocks)
     mask = arrays.pop() if has_mask else None
     values = {f: a.astype(np.float64) for f, a in zip(factors, arrays)}
@@ -62,26 +66,58 @@ def _project_block(*blocks: np.ndarray, factors: tuple[str, ...], models: tuple[
         for a in values.values():
             a[~mask] = np.nan
     s = len(models)
-    out = np.empty((2 * s, *arrays[0].shape), dtype=np.float32)
+    out = np.empty((4 * s, *arrays[0].shape), dtype=np.float32)
     for i, m in enumerate(models):
         c, code = m.evaluate(values)
+        mess, far = mess_kernel([values[f] for f in m.factor_names], [m.reference[f] for f in m.factor_names])
+        if novel == "mask":
+            outside = mess < 0
+            c = np.where(outside, np.nan, c)
+            code = np.where(outside, NODATA_CODE, code)
         out[i] = c
         out[s + i] = code
+        out[2 * s + i] = mess
+        out[3 * s + i] = far
     return out
 
 
+def with_policy(models: Sequence[CeilingModel], novel: str | None) -> list[CeilingModel]:
+    """Models whose factors follow the projection's rule for values beyond the sampled range.
+
+    ``hold`` holds each factor at its sampled limit, ``extend`` evaluates the curve beyond it,
+    ``mask`` holds and then sets the ceiling to nodata wherever MESS < 0; None keeps each model's
+    own setting.
+    """
+    if novel is None:
+        return list(models)
+    outside = "extend" if novel == "extend" else "hold"
+    return [replace(m, outside=outside, factors=tuple(replace(f, outside=outside) for f in m.factors)) for m in models]
+
+
+def novel_rule(models: Sequence[CeilingModel], novel: str | None) -> str:
+    """The rule for cells beyond the survey's range, as recorded in the outputs' metadata."""
+    if novel is not None:
+        return novel
+    rules = sorted({m.outside for m in models})
+    return rules[0] if len(rules) == 1 else "per species: " + ", ".join(f"{m.species}={m.outside}" for m in models)
+
+
 def project(
-    models: Sequence[CeilingModel], layers: dict[str, xr.DataArray], *, mask: xr.DataArray | None = None
+    models: Sequence[CeilingModel], layers: dict[str, xr.DataArray], *, mask: xr.DataArray | None = None,
+    novel: str | None = None,
 ) -> xr.Dataset:
-    """Lazy ceiling (float32) and limiting-factor code (uint8) for every species.
+    """Lazy ceiling, limiting factor, novelty (MESS) and most dissimilar factor for every species.
 
     Factor codes follow each model's own factor order; 255 marks nodata (any factor missing).
+    ``novel`` is the rule for cells beyond the sampled range (see :func:`with_policy`).
     """
     factors = tuple(layers)
     for m in models:
         lacking = [f for f in m.factor_names if f not in layers]
         if lacking:
             raise DataError(f"the model of '{m.species}' needs factor(s) {', '.join(lacking)}, which the layers lack; the model and the config must name the same factors")
+        check_reference(m.reference or {}, m.factor_names, species=m.species)
+    models = with_policy(models, novel)
     arrays = [layers[f].data for f in factors]
     if mask is not None:
         arrays.append(mask.data)
@@ -89,16 +125,27 @@ def project(
     first = layers[factors[0]]
     stacked = da.map_blocks(
         _project_block, *arrays, factors=factors, models=tuple(models), has_mask=mask is not None,
-        new_axis=0, chunks=((2 * s,), *first.data.chunks), dtype=np.float32,
+        novel=novel, new_axis=0, chunks=((4 * s,), *first.data.chunks), dtype=np.float32,
         meta=np.empty((0, 0, 0), np.float32),
     )
     coords = {"species": [m.species for m in models], "y": first.y, "x": first.x}
-    ceiling = stacked[:s]
-    codes = stacked[s:]
-    limiting = da.where(da.isnan(codes), NODATA_CODE, codes).astype(np.uint8)
+
+    def code(a: da.Array) -> da.Array:
+        return da.where(da.isnan(a), NODATA_CODE, a).astype(np.uint8)
+
+    mess = stacked[2 * s : 3 * s]
+    extrapolated = da.where(da.isnan(mess), NODATA_CODE, (mess < 0).astype(np.uint8)).astype(np.uint8)
+    dims = ("species", "y", "x")
     return xr.Dataset(
-        {"ceiling": (("species", "y", "x"), ceiling), "limiting": (("species", "y", "x"), limiting)},
+        {
+            "ceiling": (dims, stacked[:s]),
+            "limiting": (dims, code(stacked[s : 2 * s])),
+            "novelty": (dims, mess),
+            "novel_factor": (dims, code(stacked[3 * s :])),
+            "extrapolated": (dims, extrapolated),
+        },
         coords=coords,
+        attrs={"novel_cells": novel_rule(models, novel)},
     )
 
 
@@ -142,14 +189,14 @@ class StatsLayout:
 
     @property
     def size(self) -> int:
-        return self.n_zones + 2 * self.k + self.k * self.k + 5 + self.hist_bins + 2
+        return 2 * self.n_zones + 2 * self.k + self.k * self.k + 6 + self.hist_bins + 2
 
     def slices(self) -> dict[str, slice]:
         i = 0
         out = {}
         for name, n in (("zone", self.n_zones), ("lim_now", self.k), ("lim_later", self.k),
                         ("switch", self.k * self.k), ("area", 1), ("change_area", 1), ("cells", 1),
-                        ("now_area", 1), ("later_area", 1),
+                        ("now_area", 1), ("later_area", 1), ("novel", 1), ("zone_novel", self.n_zones),
                         ("hist", self.hist_bins + 2)):
             out[name] = slice(i, i + n)
             i += n
@@ -159,7 +206,7 @@ class StatsLayout:
         return np.linspace(-self.hist_max, self.hist_max, self.hist_bins + 1)
 
 
-def _stats_block(pc, pl, fc, fl, zone, area, layout: StatsLayout) -> np.ndarray:
+def _stats_block(pc, pl, fc, fl, zone, area, novel, layout: StatsLayout) -> np.ndarray:
     sl = layout.slices()
     v = np.zeros(layout.size)
     ok = np.isfinite(pc) & np.isfinite(fc)
@@ -175,6 +222,9 @@ def _stats_block(pc, pl, fc, fl, zone, area, layout: StatsLayout) -> np.ndarray:
     v[sl["cells"]] = ok.sum()
     v[sl["now_area"]] = (pc[ok].astype(np.float64) * w).sum()
     v[sl["later_area"]] = (fc[ok].astype(np.float64) * w).sum()
+    nov = (novel[ok] == 1)
+    v[sl["novel"]] = w[nov].sum()
+    v[sl["zone_novel"]] = np.bincount(zone[ok][nov], weights=w[nov], minlength=layout.n_zones)[: layout.n_zones]
     idx = np.searchsorted(layout.edges(), d, side="right")  # 0 = below, bins+1 = above
     v[sl["hist"]] = np.bincount(idx, weights=w, minlength=layout.hist_bins + 2)
     return v
@@ -188,12 +238,12 @@ def climate_stats(present: xr.Dataset, future: xr.Dataset, cmp: xr.Dataset, area
     """
     out = []
     for i, lay in enumerate(layouts):
-        def block(pc, pl, fc, fl, z, a, lay=lay):
-            return _stats_block(pc, pl, fc, fl, z, a, lay)[None, None, :]
+        def block(pc, pl, fc, fl, z, a, nv, lay=lay):
+            return _stats_block(pc, pl, fc, fl, z, a, nv, lay)[None, None, :]
 
         out.append(da.map_blocks(
             block, present["ceiling"].data[i], present["limiting"].data[i], future["ceiling"].data[i],
-            future["limiting"].data[i], cmp["zone"].data[i], area, new_axis=2,
+            future["limiting"].data[i], cmp["zone"].data[i], area, future["extrapolated"].data[i], new_axis=2,
             chunks=(tuple(1 for _ in area.chunks[0]), tuple(1 for _ in area.chunks[1]), (lay.size,)),
             dtype=np.float64,
         ))

@@ -26,7 +26,7 @@ import pandas as pd
 import xarray as xr
 
 from .areas import cell_areas
-from .categories import ZONES, factor_categories, switch_categories
+from .categories import ENSEMBLE_ZONES, EXTRAPOLATION, ROBUSTNESS, ZONES, factor_categories, switch_categories
 from .cluster import Compute, compute_context
 from .config import RunConfig
 from .errors import DataError
@@ -36,6 +36,8 @@ from .model import CeilingModel, ModelSet
 from .outputs.atomic import atomic_write_text
 from .outputs.geotiff import WindowTarget, create_tiled, finalize_cog
 from .outputs.names import (
+    ENSEMBLE,
+    ENSEMBLE_LAYERS,
     FUTURE_LAYERS,
     NETCDF_FILE,
     PRESENT_LAYERS,
@@ -51,6 +53,7 @@ from .projection import (
     model_units,
     open_climate,
     project,
+    novel_rule,
     valid_counts,
 )
 from .scenarios import PRESENT, Climate, LayerRef, ProjectionOptions, climates, projection_options
@@ -67,14 +70,31 @@ LAYER_META: dict[str, tuple[str, str, str]] = {
     "limiting": ("uint8", "limiting factor (law of the minimum)", ""),
     "zone": ("uint8", "zone class of ceiling change", ""),
     "switch": ("uint8", "limiting-factor switch, present to future", ""),
+    "novelty": ("float32", "similarity of the climate to the survey's climates (MESS); negative: novel", "%"),
+    "novel_factor": ("uint8", "most dissimilar factor (MESS)", ""),
+    "extrapolated": ("uint8", "novel climate: at least one factor outside the survey's range", ""),
+    "median_ceiling": ("float32", "ensemble median of the future ceiling", "1"),
+    "mean_ceiling": ("float32", "ensemble mean of the future ceiling", "1"),
+    "median_change": ("float32", "ensemble median of the change of the ceiling", "1"),
+    "mean_change": ("float32", "ensemble mean of the change of the ceiling", "1"),
+    "change_min": ("float32", "smallest change of the ceiling across climate models", "1"),
+    "change_max": ("float32", "largest change of the ceiling across climate models", "1"),
+    "change_iqr": ("float32", "interquartile range of the change across climate models", "1"),
+    "agreement": ("float32", "fraction of climate models whose change has the sign of the ensemble median", "1"),
+    "robustness": ("uint8", "agreement class of the change across climate models", ""),
+    "limiting_share": ("float32", "share of climate models naming the most common limiting factor", "1"),
 }
 
 
-def layer_categories(layer: str, factors: list[str]):
-    if layer == "limiting":
+def layer_categories(layer: str, factors: list[str], *, ensemble: bool = False):
+    if layer in ("limiting", "novel_factor"):
         return factor_categories(factors)
     if layer == "zone":
-        return ZONES
+        return ENSEMBLE_ZONES if ensemble else ZONES
+    if layer == "extrapolated":
+        return EXTRAPOLATION
+    if layer == "robustness":
+        return ROBUSTNESS
     if layer == "switch":
         return switch_categories(factors)
     return None
@@ -91,11 +111,12 @@ class ProjectionRun:
     written: list[Path] = field(default_factory=list)
     timings: dict[str, float] = field(default_factory=dict)
     compute: str = ""
+    warnings: list[str] = field(default_factory=list)
 
     def headline(self) -> pd.DataFrame:
         cols = ["species", "scenario", "model", "period", "area_km2_release", "area_km2_constraint",
                 "area_km2_stable", "area_km2_opens", "area_km2_closes", "mean_change", "median_change"]
-        fut = self.summary[self.summary["scenario"] != PRESENT]
+        fut = self.summary[(self.summary["scenario"] != PRESENT) & (self.summary["model"] != ENSEMBLE)]
         return fut[[c for c in cols if c in fut.columns]]
 
     def summary_text(self) -> str:
@@ -130,10 +151,15 @@ def _stats_rows(models, climate: Climate, vectors, layouts) -> tuple[list[dict],
         row: dict[str, Any] = {"species": m.species, "scenario": climate.scenario, "model": climate.model,
                                "period": climate.period, "area_km2": area / 1e6}
         row["mean_ceiling_now"] = float(v[sl["now_area"]][0]) / area if area else np.nan
+        novel = float(v[sl["novel"]][0])
+        row["area_km2_novel"] = novel / 1e6
+        row["share_novel"] = novel / area if area else np.nan
         if not climate.is_present:
             row["mean_ceiling_later"] = float(v[sl["later_area"]][0]) / area if area else np.nan
             for z in ZONES:
                 row[f"area_km2_{z.name}"] = float(v[sl["zone"]][z.code]) / 1e6
+            for z in ZONES:
+                row[f"area_km2_{z.name}_novel"] = float(v[sl["zone_novel"]][z.code]) / 1e6
         for i, f in enumerate(m.factor_names):
             row[f"area_km2_limited_now_{f}"] = float(v[sl["lim_now"]][i]) / 1e6
             if not climate.is_present:
@@ -186,7 +212,7 @@ def _block_groups(chunks: tuple[tuple[int, ...], ...], *, per_group: int):
 def _write_climate(
     comp: Compute, stage: Path, grid: GridSpec, climate: Climate, layers: dict[str, da.Array],
     models: Sequence[CeilingModel], factor_lists: list[list[str]], stats, valid, chunk: int,
-    used: Sequence[str], say: Callable[[str], None] | None = None,
+    used: Sequence[str], say: Callable[[str], None] | None = None, novel: str = "", ensemble: bool = False,
 ) -> tuple[list[Path], list[np.ndarray]]:
     """Stream every map of one climate and reduce its statistics, a group of blocks at a time.
 
@@ -201,9 +227,9 @@ def _write_climate(
             final = stage / layer_path(m.species, climate.key, name)
             final.parent.mkdir(parents=True, exist_ok=True)
             tmp = final.with_name(f".stream-{final.name}")
-            cats = layer_categories(name, factor_lists[i])
+            cats = layer_categories(name, factor_lists[i], ensemble=ensemble)
             tags = {"species": m.species, "scenario": climate.scenario, "climate_model": climate.model,
-                    "period": climate.period, "layer": name,
+                    "period": climate.period, "layer": name, "novel_cells": novel,
                     "caution": "potential upper limit of abundance, not a forecast; needs expert review"}
             create_tiled(tmp, grid, dtype=dtype, description=long_name, units=units, chunk=chunk, categories=cats, tags=tags)
             sources.append(layers[name][i])
@@ -259,6 +285,7 @@ def run_projection(
     layouts = [_layout(m) for m in ms]
     factor_lists = [m.factor_names for m in ms]
     timings: dict[str, float] = {}
+    notes: list[str] = []
     written: list[Path] = []
     rows: list[dict] = []
     trans: list[dict] = []
@@ -266,11 +293,11 @@ def run_projection(
     opened = [open_climate(c, grid, used, units, opts) for c in cl]
     with compute_context(workers=workers, address=address, threads=threads) as comp:
         t0 = time.perf_counter()
-        pres_ds = project(ms, opened[0], mask=mask)
+        pres_ds = project(ms, opened[0], mask=mask, novel=opts.novel)
         pres_layers = {n: pres_ds[n].data for n in PRESENT_LAYERS}
         stats = climate_stats(pres_ds, pres_ds, _present_zone(pres_ds), area, layouts)
         valid = [valid_counts(opened[0][f].data) for f in used]
-        w, vec = _write_climate(comp, stage, grid, cl[0], pres_layers, ms, factor_lists, stats, valid, opts.chunk, used, progress)
+        w, vec = _write_climate(comp, stage, grid, cl[0], pres_layers, ms, factor_lists, stats, valid, opts.chunk, used, progress, novel_rule(ms, opts.novel))
         written += w
         r, _ = _stats_rows(ms, cl[0], vec, layouts)
         rows += r
@@ -284,19 +311,31 @@ def run_projection(
         )
         for j, (c, lay) in enumerate(zip(cl[1:], opened[1:]), start=2):
             t0 = time.perf_counter()
-            fut = project(ms, lay, mask=mask)
+            fut = project(ms, lay, mask=mask, novel=opts.novel)
             cmp = compare(back, fut, n_factors=[len(m.factors) for m in ms], opts=opts)
             maps = {"ceiling": fut["ceiling"].data, "change": cmp["change"].data, "change_pct": cmp["change_pct"].data,
-                    "limiting": fut["limiting"].data, "zone": cmp["zone"].data, "switch": cmp["switch"].data}
+                    "limiting": fut["limiting"].data, "zone": cmp["zone"].data, "switch": cmp["switch"].data,
+                    **{n: fut[n].data for n in ("novelty", "novel_factor", "extrapolated")}}
             stats = climate_stats(back, fut, cmp, area, layouts)
             valid = [valid_counts(lay[f].data) for f in used]
-            w, vec = _write_climate(comp, stage, grid, c, {n: maps[n] for n in FUTURE_LAYERS}, ms, factor_lists, stats, valid, opts.chunk, used, progress)
+            w, vec = _write_climate(comp, stage, grid, c, {n: maps[n] for n in FUTURE_LAYERS}, ms, factor_lists, stats, valid, opts.chunk, used, progress, novel_rule(ms, opts.novel))
             written += w
             r, t = _stats_rows(ms, c, vec, layouts)
             rows += r
             trans += t
             timings["/".join(c.key)] = time.perf_counter() - t0
             say(f"[{j}/{len(cl)}] {c.label}: {len(w)} files in {timings['/'.join(c.key)]:.1f} s")
+        for sc, pe, members, missing in ensemble_groups(cl[1:], opts.ensemble_min_models, warn=notes.append):
+            t0 = time.perf_counter()
+            ens = Climate(sc, ENSEMBLE, pe, {})
+            layers = _ensemble_layers(stage, grid, ms, back, members, opts)
+            estats = [_ensemble_stats(layers["zone"][i], layers["robustness"][i], layers["agreement"][i], area) for i in range(len(ms))]
+            w, vec = _write_climate(comp, stage, grid, ens, layers, ms, factor_lists, estats, [], opts.chunk, used, progress,
+                                    novel_rule(ms, opts.novel), ensemble=True)
+            written += w
+            rows += _ensemble_rows(ms, ens, vec, members, missing)
+            timings["/".join(ens.key)] = time.perf_counter() - t0
+            say(f"ensemble {sc} / {pe} ({len(members)} models): {len(w)} files in {timings['/'.join(ens.key)]:.1f} s")
         t0 = time.perf_counter()
         written.append(_netcdf(stage, grid, ms, cl, area, opts, cfg))
         timings["netcdf"] = time.perf_counter() - t0
@@ -305,7 +344,7 @@ def run_projection(
         transitions = pd.DataFrame(trans)
         written.append(atomic_write_text(stage / SUMMARY_FILE, summary.to_csv(index=False, float_format="%.6g")))
         written.append(atomic_write_text(stage / TRANSITIONS_FILE, transitions.to_csv(index=False, float_format="%.6g")))
-        run = ProjectionRun(cl, grid, summary, transitions, written, timings, comp.describe())
+        run = ProjectionRun(cl, grid, summary, transitions, written, timings, comp.describe(), notes)
     return run
 
 
@@ -348,7 +387,7 @@ def _netcdf(stage: Path, grid: GridSpec, ms: list[CeilingModel], cl: list[Climat
     return write_netcdf(
         stage / NETCDF_FILE, grid=grid, species=[m.species for m in ms], futures=[c.key for c in futures],
         layers=layers, area=area, attrs={"title": f"ceilings of species abundance: {cfg.name}",
-                                         "present_period": cl[0].period},
+                                         "present_period": cl[0].period, "novel_cells": novel_rule(ms, opts.novel)},
     )
 
 
@@ -423,3 +462,80 @@ def _sha(p: Path) -> str:
     from .outputs.atomic import sha256_file
 
     return sha256_file(p)
+
+
+def ensemble_groups(futures: Sequence[Climate], min_models: int, *, warn: Callable[[str], None]):
+    """(scenario, period, member climates, missing model names) for each ensemble to build.
+
+    The expected models are every climate model of the run; a scenario and period with fewer
+    than ``min_models`` of them is skipped with a warning naming the missing ones.
+    """
+    expected = list(dict.fromkeys(c.model for c in futures))
+    keys = list(dict.fromkeys((c.scenario, c.period) for c in futures))
+    for sc, pe in keys:
+        members = [c for c in futures if (c.scenario, c.period) == (sc, pe)]
+        have = {c.model for c in members}
+        missing = [m for m in expected if m not in have]
+        if len(members) < min_models:
+            if len(expected) >= min_models:
+                warn(f"no ensemble for {sc} / {pe}: {len(members)} climate model(s), at least {min_models} needed"
+                     + (f" (missing: {', '.join(missing)})" if missing else ""))
+            continue
+        if missing:
+            warn(f"ensemble for {sc} / {pe} lacks climate model(s) {', '.join(missing)}; built from {len(members)}")
+        yield sc, pe, members, missing
+
+
+def _ensemble_layers(stage: Path, grid: GridSpec, ms: list[CeilingModel], back: xr.Dataset, members: list[Climate],
+                     opts: ProjectionOptions) -> dict[str, da.Array]:
+    from .ensemble import ensemble_kernel
+
+    names = ENSEMBLE_LAYERS
+    per_species = []
+    for i, m in enumerate(ms):
+        fut = da.stack([_read_back(stage / layer_path(m.species, c.key, "ceiling"), grid, opts.chunk, code=False) for c in members])
+        lim = da.stack([_read_back(stage / layer_path(m.species, c.key, "limiting"), grid, opts.chunk, code=True) for c in members])
+        k = len(m.factors)
+
+        def block(p, f, lim_block, k=k):
+            r = ensemble_kernel(p, f, lim_block, k, robust=opts.agreement_threshold, release=opts.release_threshold,
+                                constraint=opts.constraint_threshold, floor=opts.absolute_floor, zero=opts.zero_level)
+            return np.stack([r[n].astype(np.float32) for n in names])
+
+        out = da.map_blocks(block, back["ceiling"].data[i], fut.rechunk({0: -1}), lim.rechunk({0: -1}),
+                            chunks=((len(names),), *back["ceiling"].data[i].chunks), dtype=np.float32,
+                            meta=np.empty((0, 0, 0), np.float32))
+        per_species.append(out)
+    layers = {}
+    for j, n in enumerate(names):
+        arr = da.stack([o[j] for o in per_species])
+        layers[n] = arr.astype(np.uint8) if LAYER_META[n][0] == "uint8" else arr
+    return layers
+
+
+def _ensemble_stats(zone: da.Array, robust: da.Array, agreement: da.Array, area: da.Array) -> da.Array:
+    def block(z, r, a, w):
+        ok = z != NODATA_CODE
+        v = np.zeros(10)
+        v[:7] = np.bincount(z[ok], weights=w[ok], minlength=7)[:7]
+        v[7] = w[ok & (r == 1)].sum()
+        v[8] = w[ok].sum()
+        v[9] = (np.nan_to_num(a[ok]) * w[ok]).sum()
+        return v[None, None, :]
+
+    return da.map_blocks(block, zone, robust, agreement, area, new_axis=2,
+                         chunks=(tuple(1 for _ in area.chunks[0]), tuple(1 for _ in area.chunks[1]), (10,)), dtype=np.float64)
+
+
+def _ensemble_rows(ms, ens: Climate, vectors, members, missing) -> list[dict]:
+    rows = []
+    for m, v in zip(ms, vectors):
+        row: dict[str, Any] = {"species": m.species, "scenario": ens.scenario, "model": ENSEMBLE, "period": ens.period,
+                               "area_km2": v[8] / 1e6, "n_models": len(members),
+                               "models": " ".join(c.model for c in members), "missing_models": " ".join(missing)}
+        for z in ENSEMBLE_ZONES:
+            row[f"area_km2_{z.name}"] = v[z.code] / 1e6
+        row["area_km2_robust"] = v[7] / 1e6
+        row["mean_agreement"] = v[9] / v[8] if v[8] else np.nan
+        rows.append(row)
+    return rows

@@ -123,6 +123,11 @@ class ProjectionOptions(_Strict):
     absolute_floor: float = Field(default=0.5, ge=0)
     zero_level: float = Field(default=0.0, ge=0)
     gdal_cache_mb: int = Field(default=64, ge=8, le=65536)
+    # what the projection does beyond the survey's range; None keeps the model's own setting
+    # (fit.outside, "hold" by default)
+    novel: Literal["hold", "extend", "mask"] | None = None
+    ensemble_min_models: int = Field(default=2, ge=2)
+    agreement_threshold: float = Field(default=0.8, gt=0.5, le=1.0)
 
     @model_validator(mode="after")
     def _chunk_multiple(self) -> ProjectionOptions:
@@ -204,6 +209,8 @@ def climates(cfg: RunConfig) -> list[Climate]:
                 raise ConfigError(f"{cfg.source}: future {sc} / {mo} / {pe} is listed twice; list each scenario, model and period once")
             if sc == PRESENT:
                 raise ConfigError(f"{cfg.source}: '{PRESENT}' is reserved for the baseline; rename the scenario in futures.{i}")
+            if mo == "ensemble":
+                raise ConfigError(f"{cfg.source}: 'ensemble' is reserved for the combined models; rename the climate model in futures.{i}")
             seen.add(key)
             fl = {}
             for name in names:

@@ -84,8 +84,15 @@ def model_document(species: dict[str, list[dict[str, Any]]], *, outside: str = "
         "kind": "ceiling-model", "schema_version": schema_version,
         "package": {"name": "ceiling", "version": "test"}, "provenance": {"note": "written by hand in a test"},
         "species": {sp: {"tau": tau, "transform": transform, "outside": outside, "n_points": 100,
-                         "dropped": {}, "factors": fs} for sp, fs in species.items()},
+                         "dropped": {}, "factors": fs, "reference": {f["name"]: _reference(f) for f in fs}}
+                    for sp, fs in species.items()},
     }
+
+
+def _reference(factor: dict[str, Any]) -> list[float]:
+    """A reference sample for novelty: 101 values spread evenly over the observed range."""
+    lo, hi = factor["observed_range"]
+    return [float(v) for v in np.linspace(lo, hi, 101)]
 
 
 def write_json(path: Path, doc: dict[str, Any]) -> Path:

@@ -26,7 +26,9 @@ SPECIES = ["sp_a", "sp_b", "sp_c"]
 # Category names as documented (ceiling/categories.py; README): codes 0..5
 ZONE_NAMES = ["stable", "release", "constraint", "opens", "closes", "absent"]
 SWITCH_NAMES = [f"{a} (unchanged)" if a == b else f"{a} -> {b}" for a in FACTORS for b in FACTORS]
-CATEGORICAL = {"limiting": FACTORS, "zone": ZONE_NAMES, "switch": SWITCH_NAMES}
+CATEGORICAL = {"limiting": FACTORS, "zone": ZONE_NAMES, "switch": SWITCH_NAMES, "novel_factor": FACTORS,
+               "extrapolated": ["within sampled range", "novel climate"]}
+ENSEMBLE_CATEGORICAL = {"robustness", "zone", "limiting"}
 FLOAT_UNITS = {"ceiling": "1", "change": "1", "change_pct": "%"}
 FUTURE = Path("ssp585") / "model-b" / "2071-2100"
 
@@ -49,7 +51,10 @@ def _all_tifs(root: Path) -> list[Path]:
 
 def test_every_map_has_the_template_grid(demo, template):
     tifs = _all_tifs(demo)
-    assert len(tifs) == len(SPECIES) * (2 + 12 * 6)
+    from ceiling.outputs.names import ENSEMBLE_LAYERS, FUTURE_LAYERS, PRESENT_LAYERS
+
+    # 12 futures and 4 ensembles (2 scenarios x 2 periods) per species
+    assert len(tifs) == len(SPECIES) * (len(PRESENT_LAYERS) + 12 * len(FUTURE_LAYERS) + 4 * len(ENSEMBLE_LAYERS))
     for p in tifs:
         with rasterio.open(p) as src:
             assert src.crs == template["crs"], p
@@ -57,7 +62,7 @@ def test_every_map_has_the_template_grid(demo, template):
             assert (src.height, src.width) == template["shape"], p
             assert src.count == 1
             layer = p.stem
-            if layer in CATEGORICAL:
+            if layer in CATEGORICAL or ("ensemble" in p.parts and layer in ENSEMBLE_CATEGORICAL):
                 assert src.dtypes[0] == "uint8" and src.nodata == 255, p
             else:
                 assert src.dtypes[0] == "float32", p

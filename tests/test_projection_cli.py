@@ -85,6 +85,9 @@ def test_demo_writes_every_map(demo):
 def test_demo_tables(demo):
     out, _ = demo
     s = pd.read_csv(out / "summary.csv")
+    ensembles = s[s["model"] == "ensemble"]
+    assert len(ensembles) == len(SPECIES) * 4  # 2 scenarios x 2 periods
+    s = s[s["model"] != "ensemble"]
     assert len(s) == len(SPECIES) * (1 + len(FUTURES))
     keys = set(zip(s["species"], s["scenario"], s["model"].fillna(""), s["period"]))
     for sp in SPECIES:

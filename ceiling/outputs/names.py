@@ -7,7 +7,7 @@ from pathlib import Path
 
 __all__ = [
     "MODEL_FILE", "DIAGNOSTICS_FILE", "FIGURES_DIR", "NETCDF_FILE", "SUMMARY_FILE", "TRANSITIONS_FILE",
-    "MANIFEST_FILE", "PRESENT_LAYERS", "FUTURE_LAYERS", "fit_figure_name", "fit_panel_name", "safe_part",
+    "MANIFEST_FILE", "PRESENT_LAYERS", "FUTURE_LAYERS", "ENSEMBLE_LAYERS", "ENSEMBLE", "fit_figure_name", "fit_panel_name", "safe_part",
     "climate_dir", "layer_path",
 ]
 
@@ -18,8 +18,11 @@ NETCDF_FILE = "ceiling.nc"
 SUMMARY_FILE = "summary.csv"
 TRANSITIONS_FILE = "transitions.csv"
 MANIFEST_FILE = "manifest.json"
-PRESENT_LAYERS = ("ceiling", "limiting")
-FUTURE_LAYERS = ("ceiling", "change", "change_pct", "limiting", "zone", "switch")
+PRESENT_LAYERS = ("ceiling", "limiting", "novelty", "novel_factor", "extrapolated")
+FUTURE_LAYERS = ("ceiling", "change", "change_pct", "limiting", "zone", "switch", "novelty", "novel_factor", "extrapolated")
+ENSEMBLE_LAYERS = ("median_ceiling", "mean_ceiling", "median_change", "mean_change", "change_min", "change_max",
+                   "change_iqr", "agreement", "robustness", "zone", "limiting", "limiting_share")
+ENSEMBLE = "ensemble"  # the climate-model name under which ensemble maps are written
 
 _SAFE = re.compile(r"[^A-Za-z0-9._-]+")
 
@@ -39,7 +42,8 @@ def fit_panel_name(species: str) -> Path:
 
 
 def climate_dir(species: str, scenario: str, model: str, period: str) -> Path:
-    """``{species}/present`` or ``{species}/{scenario}/{model}/{period}``."""
+    """``{species}/present``, ``{species}/{scenario}/{model}/{period}``; ensembles use the model
+    name ``ensemble``: ``{species}/{scenario}/ensemble/{period}``."""
     if scenario == "present":
         return Path(safe_part(species)) / "present"
     return Path(safe_part(species)) / safe_part(scenario) / safe_part(model) / safe_part(period)
