@@ -331,6 +331,13 @@ def _parse_bootstrap(
         raise ModelFileError(
             f"{w}: 'replicates' must be an integer of at least {MIN_REPLICATES}; got {n_rep!r}; {fix}"
         )
+    method = boot.get("method", "pairs")
+    if method not in ("pairs", "spatial-blocks"):
+        raise ModelFileError(f"{w}: 'method' must be 'pairs' or 'spatial-blocks'; got {method!r}; {fix}")
+    block = boot.get("block")
+    if block is not None and (isinstance(block, bool) or not isinstance(block, int | float)
+                              or not math.isfinite(block) or block <= 0):
+        raise ModelFileError(f"{w}: 'block' must be a positive number of map units or null; got {block!r}; {fix}")
     coefs = _need(boot, "coefficients", w)
     names = [f.factor for f in factors]
     if not isinstance(coefs, Mapping) or sorted(coefs) != sorted(names):

@@ -23,7 +23,7 @@ from .model import CeilingModel
 from .novelty import check_reference, mess_kernel
 from .scenarios import Climate, ProjectionOptions
 
-__all__ = ["open_climate", "project", "novel_rule", "with_policy", "compare", "climate_stats", "valid_counts", "StatsLayout", "model_units"]
+__all__ = ["uncertainty", "has_replicates", "PRESENT_BOUNDS", "FUTURE_BOUNDS", "open_climate", "project", "novel_rule", "with_policy", "compare", "climate_stats", "valid_counts", "StatsLayout", "model_units"]
 
 
 def model_units(models: Sequence[CeilingModel], factors: Sequence[str]) -> dict[str, str]:
@@ -256,3 +256,66 @@ def valid_counts(arr: da.Array) -> da.Array:
         lambda a: np.array([[np.isfinite(a).sum()]], dtype=np.int64), arr,
         chunks=tuple(tuple(1 for _ in c) for c in arr.chunks), dtype=np.int64,
     )
+
+
+PRESENT_BOUNDS = ("ceiling_lower", "ceiling_upper")
+FUTURE_BOUNDS = ("ceiling_lower", "ceiling_upper", "change_lower", "change_upper", "p_release", "p_constraint")
+_FROM_KERNEL = {"ceiling_lower": "future_low", "ceiling_upper": "future_high", "change_lower": "change_low",
+                "change_upper": "change_high", "p_release": "release_probability", "p_constraint": "constraint_probability"}
+
+
+def has_replicates(models: Sequence[CeilingModel]) -> bool:
+    """True when every species carries bootstrap replicates (all or none)."""
+    counts = [m.n_replicates for m in models]
+    if any(counts) and not all(counts):
+        missing = [m.species for m in models if not m.n_replicates]
+        raise DataError(f"species {', '.join(missing)} have no bootstrap replicates while others do; fit all with fit.bootstrap")
+    return bool(counts) and all(counts)
+
+
+def _uncertainty_block(*blocks: np.ndarray, factors: tuple[str, ...], models: tuple[CeilingModel, ...],
+                       future: bool, opts: ProjectionOptions) -> np.ndarray:
+    from .uncertainty import replicate_ceilings, uncertainty_layers
+
+    k = len(factors)
+    present = {f: b.astype(np.float64) for f, b in zip(factors, blocks[:k])}
+    later = {f: b.astype(np.float64) for f, b in zip(factors, blocks[k : 2 * k])} if future else None
+    names = FUTURE_BOUNDS if future else PRESENT_BOUNDS
+    out = np.empty((len(models) * len(names), *blocks[0].shape), dtype=np.float32)
+    for i, m in enumerate(models):
+        rp = replicate_ceilings(m, present)
+        rf = replicate_ceilings(m, later) if later is not None else None
+        lay = uncertainty_layers(rp, rf, lower=opts.lower_percentile, upper=opts.upper_percentile,
+                                 release=opts.release_threshold, constraint=opts.constraint_threshold,
+                                 floor=opts.absolute_floor, zero=opts.zero_level)
+        for j, n in enumerate(names):
+            key = _FROM_KERNEL[n] if future else {"ceiling_lower": "present_low", "ceiling_upper": "present_high"}[n]
+            out[i * len(names) + j] = lay[key]
+    return out
+
+
+def uncertainty(
+    models: Sequence[CeilingModel], present: dict[str, xr.DataArray], future: dict[str, xr.DataArray] | None,
+    *, opts: ProjectionOptions, novel: str | None = None,
+) -> xr.Dataset:
+    """Lazy bootstrap bounds (and zone probabilities for a future) for every species.
+
+    All replicates are evaluated inside one blockwise kernel (a replicate axis in the kernel).
+    A future's bounds need the present replicates cell by cell, so the present layers are read
+    again with the future's: K extra layer reads per future, instead of storing B replicate
+    grids of the present.
+    """
+    models = with_policy(models, novel)
+    factors = tuple(present)
+    arrays = [present[f].data for f in factors] + ([future[f].data for f in factors] if future else [])
+    names = FUTURE_BOUNDS if future else PRESENT_BOUNDS
+    s = len(models)
+    first = present[factors[0]]
+    stacked = da.map_blocks(
+        _uncertainty_block, *arrays, factors=factors, models=tuple(models), future=future is not None, opts=opts,
+        new_axis=0, chunks=((s * len(names),), *first.data.chunks), dtype=np.float32,
+        meta=np.empty((0, 0, 0), np.float32),
+    )
+    dims = ("species", "y", "x")
+    data = {n: (dims, stacked[j :: len(names)]) for j, n in enumerate(names)}
+    return xr.Dataset(data, coords={"species": [m.species for m in models], "y": first.y, "x": first.x})

@@ -26,7 +26,14 @@ import pandas as pd
 import xarray as xr
 
 from .areas import cell_areas
-from .categories import ENSEMBLE_ZONES, EXTRAPOLATION, ROBUSTNESS, ZONES, factor_categories, switch_categories
+from .categories import (
+    ENSEMBLE_ZONES,
+    EXTRAPOLATION,
+    ROBUSTNESS,
+    ZONES,
+    factor_categories,
+    switch_categories,
+)
 from .cluster import Compute, compute_context
 from .config import RunConfig
 from .errors import DataError
@@ -47,13 +54,17 @@ from .outputs.names import (
 )
 from .outputs.netcdf import write_netcdf
 from .projection import (
+    FUTURE_BOUNDS,
+    PRESENT_BOUNDS,
     StatsLayout,
     climate_stats,
     compare,
+    has_replicates,
     model_units,
+    novel_rule,
     open_climate,
     project,
-    novel_rule,
+    uncertainty,
     valid_counts,
 )
 from .scenarios import PRESENT, Climate, LayerRef, ProjectionOptions, climates, projection_options
@@ -83,6 +94,12 @@ LAYER_META: dict[str, tuple[str, str, str]] = {
     "agreement": ("float32", "fraction of climate models whose change has the sign of the ensemble median", "1"),
     "robustness": ("uint8", "agreement class of the change across climate models", ""),
     "limiting_share": ("float32", "share of climate models naming the most common limiting factor", "1"),
+    "ceiling_lower": ("float32", "lower bootstrap bound of the ceiling", "1"),
+    "ceiling_upper": ("float32", "upper bootstrap bound of the ceiling", "1"),
+    "change_lower": ("float32", "lower bootstrap bound of the change of the ceiling", "1"),
+    "change_upper": ("float32", "upper bootstrap bound of the change of the ceiling", "1"),
+    "p_release": ("float32", "probability of release: share of bootstrap replicates", "1"),
+    "p_constraint": ("float32", "probability of constraint: share of bootstrap replicates", "1"),
 }
 
 
@@ -295,6 +312,10 @@ def run_projection(
         t0 = time.perf_counter()
         pres_ds = project(ms, opened[0], mask=mask, novel=opts.novel)
         pres_layers = {n: pres_ds[n].data for n in PRESENT_LAYERS}
+        boot = has_replicates(ms)
+        if boot:
+            unc = uncertainty(ms, opened[0], None, opts=opts, novel=opts.novel)
+            pres_layers.update({n: unc[n].data for n in PRESENT_BOUNDS})
         stats = climate_stats(pres_ds, pres_ds, _present_zone(pres_ds), area, layouts)
         valid = [valid_counts(opened[0][f].data) for f in used]
         w, vec = _write_climate(comp, stage, grid, cl[0], pres_layers, ms, factor_lists, stats, valid, opts.chunk, used, progress, novel_rule(ms, opts.novel))
@@ -318,7 +339,11 @@ def run_projection(
                     **{n: fut[n].data for n in ("novelty", "novel_factor", "extrapolated")}}
             stats = climate_stats(back, fut, cmp, area, layouts)
             valid = [valid_counts(lay[f].data) for f in used]
-            w, vec = _write_climate(comp, stage, grid, c, {n: maps[n] for n in FUTURE_LAYERS}, ms, factor_lists, stats, valid, opts.chunk, used, progress, novel_rule(ms, opts.novel))
+            layers_out = {n: maps[n] for n in FUTURE_LAYERS}
+            if boot:
+                unc = uncertainty(ms, opened[0], lay, opts=opts, novel=opts.novel)
+                layers_out.update({n: unc[n].data for n in FUTURE_BOUNDS})
+            w, vec = _write_climate(comp, stage, grid, c, layers_out, ms, factor_lists, stats, valid, opts.chunk, used, progress, novel_rule(ms, opts.novel))
             written += w
             r, t = _stats_rows(ms, c, vec, layouts)
             rows += r
@@ -373,13 +398,14 @@ def _netcdf(stage: Path, grid: GridSpec, ms: list[CeilingModel], cl: list[Climat
     if any(m.factor_names != factors for m in ms):
         raise DataError("species use different factor lists; the NetCDF needs one set of limiting-factor codes")
     layers: dict[str, Any] = {}
-    for name in PRESENT_LAYERS:
+    boot = has_replicates(ms)
+    for name in PRESENT_LAYERS + (PRESENT_BOUNDS if boot else ()):
         dtype, long_name, units = LAYER_META[name]
         arrs = [_read_back(stage / layer_path(m.species, cl[0].key, name), grid, opts.chunk, code=dtype == "uint8") for m in ms]
         layers[f"{name}_present"] = (da.stack(arrs), f"{long_name}, present", units, layer_categories(name, factors))
     futures = cl[1:]
     if futures:
-        for name in FUTURE_LAYERS:
+        for name in FUTURE_LAYERS + (FUTURE_BOUNDS if boot else ()):
             dtype, long_name, units = LAYER_META[name]
             arrs = [da.stack([_read_back(stage / layer_path(m.species, c.key, name), grid, opts.chunk, code=dtype == "uint8")
                               for c in futures]) for m in ms]

@@ -128,6 +128,8 @@ class ProjectionOptions(_Strict):
     novel: Literal["hold", "extend", "mask"] | None = None
     ensemble_min_models: int = Field(default=2, ge=2)
     agreement_threshold: float = Field(default=0.8, gt=0.5, le=1.0)
+    lower_percentile: float = Field(default=5.0, ge=0.0, lt=50.0)
+    upper_percentile: float = Field(default=95.0, gt=50.0, le=100.0)
 
     @model_validator(mode="after")
     def _chunk_multiple(self) -> ProjectionOptions:

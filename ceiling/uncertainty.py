@@ -34,7 +34,14 @@ from .boundary.ceiling import FactorCeiling, _binned_maxima
 from .boundary.quantreg import quantile_fit
 from .config import MIN_REPLICATES
 from .errors import CeilingWarning, ConfigError, FitError
-from .kernels import CONSTRAINT, NODATA_CODE, RELEASE, forward_transform, inverse_transform, zone_kernel
+from .kernels import (
+    CONSTRAINT,
+    NODATA_CODE,
+    RELEASE,
+    forward_transform,
+    inverse_transform,
+    zone_kernel,
+)
 from .model import CeilingModel
 
 __all__ = [
@@ -42,7 +49,10 @@ __all__ = [
     "SOLVER",
     "bootstrap_model",
     "bootstrap_counts",
+    "counts_to_indices",
     "spatial_blocks",
+    "residual_band",
+    "SmoothedFit",
     "smoothed_check_loss",
     "smoothed_quantile_fit",
     "smoothing_bandwidth",
@@ -475,13 +485,19 @@ def bootstrap_model(
       of bandwidth h (Fernandes, Guerre & Horta 2021, J. Bus. Econ. Stat. 39:678-695; He, Pan,
       Tan & Zhou 2023, J. Econometrics 232:367-388), a smooth convex loss minimised by damped
       Newton steps (:func:`smoothed_quantile_fit`), all replicates of a factor at once with the
-      resample counts as case weights, warm-started from the full-sample fit. Bandwidth
-      (:func:`smoothing_bandwidth`): ``h = s * max(((log n + p) / n) ** 0.4, 0.05)`` with ``s``
-      the interquartile range / 1.349 of the full-sample residuals of the fitted ceiling.
-      The smoothed fit estimates the quantile coefficients up to a small smoothing bias that
-      is nearly the same on every resample, so each replicate is stored as
+      resample counts as case weights, warm-started from the full-sample fit; points far
+      from the boundary are screened out of the iterations without changing the result.
+      Bandwidth (:func:`smoothing_bandwidth`): ``h = 0.25 * w * max(((log n + p) / n) ** 0.4,
+      0.05)``, with ``w`` the width of the band of full-sample residuals around the
+      tau-quantile that holds a share 1 - tau of the points (:func:`residual_band`). The
+      smoothed fit estimates the quantile coefficients up to a small smoothing bias that is
+      nearly the same on every resample, so each replicate is stored as
       ``b_exact + (b_smooth* - b_smooth)``: the exact full-sample coefficients plus the
-      replicate's departure from the full-sample smoothed fit.
+      replicate's departure from the full-sample smoothed fit. A replicate whose smoothed
+      fit does not converge is refitted exactly (statsmodels QuantReg) instead; their number
+      is kept as ``exact_fallbacks``. Measured against exact QuantReg on the same resamples
+      (Engel data, tau 0.9; synthetic ceilings of 20,000 points, tau 0.95) the gap is about
+      0.1 bootstrap standard deviations at the median and below 0.25 at the 90th percentile.
     - Binned-maxima ceilings: the binned maxima of the resample are refitted by least squares
       (``bins`` gives each such factor's bin count, as in the fit; the full-sample refit must
       reproduce the model's coefficients).
@@ -548,7 +564,8 @@ def bootstrap_model(
                 if coef is None:
                     raise FitError(
                         f"species '{model.species}' factor '{fc.factor}': a bootstrap resample "
-                        f"leaves fewer than {fc.basis.n_params} bins with points; use fewer bins"
+                        f"leaves fewer than {fc.basis.n_params} bins with enough points; use "
+                        "fewer bins for this factor"
                     )
                 out[b] = coef
             coefs[fc.factor] = out

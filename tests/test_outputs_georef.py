@@ -52,9 +52,13 @@ def _all_tifs(root: Path) -> list[Path]:
 def test_every_map_has_the_template_grid(demo, template):
     tifs = _all_tifs(demo)
     from ceiling.outputs.names import ENSEMBLE_LAYERS, FUTURE_LAYERS, PRESENT_LAYERS
+    from ceiling.projection import FUTURE_BOUNDS, PRESENT_BOUNDS
 
-    # 12 futures and 4 ensembles (2 scenarios x 2 periods) per species
-    assert len(tifs) == len(SPECIES) * (len(PRESENT_LAYERS) + 12 * len(FUTURE_LAYERS) + 4 * len(ENSEMBLE_LAYERS))
+    # 12 futures and 4 ensembles (2 scenarios x 2 periods) per species; the demo fits bootstrap
+    # replicates, so present and futures also carry their bounds
+    per_species = (len(PRESENT_LAYERS) + len(PRESENT_BOUNDS) + 12 * (len(FUTURE_LAYERS) + len(FUTURE_BOUNDS))
+                   + 4 * len(ENSEMBLE_LAYERS))
+    assert len(tifs) == len(SPECIES) * per_species
     for p in tifs:
         with rasterio.open(p) as src:
             assert src.crs == template["crs"], p

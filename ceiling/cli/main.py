@@ -38,6 +38,8 @@ def _register() -> None:
     cli.add_command(project_cmd.project)
     cli.add_command(project_cmd.run)
     cli.add_command(demo_cmd.demo)
+    from .summarize import summarize as summarize_cmd  # regions: zones.csv / zones.gpkg
+    cli.add_command(summarize_cmd)
 
 
 _register()

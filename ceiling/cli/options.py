@@ -15,6 +15,29 @@ from ..errors import CeilingError, CeilingWarning
 config_arg = click.argument("config", type=click.Path(path_type=Path, dir_okay=False))
 out_opt = click.option("--out", "out", required=True, type=click.Path(path_type=Path, file_okay=False), help="Output folder (created; refused if it exists and is not empty unless --overwrite).")
 overwrite_opt = click.option("--overwrite", is_flag=True, help="Replace an existing output folder.")
+bootstrap_opt = click.option("--bootstrap", "bootstrap", type=int, default=None,
+                             help="Refit on B bootstrap resamples of the survey (seeded; overrides fit.bootstrap; 0 turns it off).")
+
+
+def with_bootstrap(cfg, bootstrap):
+    """The config with ``fit.bootstrap`` replaced by the command-line value, validated as in a file."""
+    if bootstrap is None:
+        return cfg
+    from pydantic import ValidationError
+
+    from ..config import FitConfig, _format_error
+
+    try:
+        fit = FitConfig.model_validate({**cfg.fit.model_dump(), "bootstrap": bootstrap})
+    except ValidationError as exc:
+        raise_config(_format_error({**exc.errors()[0], "loc": ("--bootstrap",)}, "command line"))
+    return cfg.model_copy(update={"fit": fit})
+
+
+def raise_config(msg: str):
+    from ..errors import ConfigError
+
+    raise ConfigError(msg)
 
 EXIT_BAD_INPUT = 2
 

@@ -8,7 +8,7 @@ import click
 
 from ..config import load_config
 from ..running import project_to_folder
-from .options import config_arg, handle_errors, out_opt, overwrite_opt
+from .options import bootstrap_opt, config_arg, handle_errors, out_opt, overwrite_opt, with_bootstrap
 
 compute_opts = [
     click.option("--workers", type=int, default=None, help="Start a local dask.distributed cluster with N worker processes (loopback)."),
@@ -23,8 +23,9 @@ def _with_compute(fn):
     return fn
 
 
-def _run(ctx: click.Context, config: Path, out: Path, model: Path | None, overwrite: bool, workers, address, threads) -> None:
-    cfg = load_config(config)
+def _run(ctx: click.Context, config: Path, out: Path, model: Path | None, overwrite: bool, workers, address, threads,
+         bootstrap: int | None = None) -> None:
+    cfg = with_bootstrap(load_config(config), bootstrap)
     quiet = ctx.obj.get("quiet")
     res = project_to_folder(
         cfg, out, model_path=model, overwrite=overwrite, workers=workers, address=address, threads=threads,
@@ -54,9 +55,10 @@ def project(ctx, config, model, out, overwrite, workers, address, threads) -> No
 @out_opt
 @click.option("--model", "model", default=None, type=click.Path(path_type=Path, dir_okay=False), help="Reuse this model file instead of fitting.")
 @overwrite_opt
+@bootstrap_opt
 @_with_compute
 @click.pass_context
 @handle_errors
-def run(ctx, config, out, model, overwrite, workers, address, threads) -> None:
+def run(ctx, config, out, model, overwrite, bootstrap, workers, address, threads) -> None:
     """Fit (or reuse a model file) and project: the whole job on CONFIG."""
-    _run(ctx, config, out, model, overwrite, workers, address, threads)
+    _run(ctx, config, out, model, overwrite, workers, address, threads, bootstrap)
