@@ -7,7 +7,8 @@ a beta-distributed share, with a quarter of the points empty. Times
 (a) the plain fit (``ceiling.model.fit``, ``--wedge`` wedge-test replicates, default 0),
 (b) the fit plus ``--replicates`` bootstrap replicates (default 200), pairs and spatial blocks,
 
-and prints the per-replicate cost. Then refits ``--exact`` of the same resamples (default 5)
+and prints the per-replicate cost; (c) times the replicate kernel and the uncertainty layers
+on a ``--chunk`` x ``--chunk`` chunk of present and future cells. Then refits ``--exact`` of the same resamples (default 5)
 per factor with exact quantile regression (statsmodels QuantReg, as the fit uses) to give
 its per-replicate cost and the gap between the smoothed replicates and the exact ones, in
 units of the bootstrap standard deviation of each coefficient.
@@ -29,7 +30,12 @@ from ceiling.boundary.quantreg import quantile_fit
 from ceiling.kernels import forward_transform
 from ceiling.model import FactorSpec, fit
 from ceiling.samples import Samples
-from ceiling.uncertainty import bootstrap_counts, bootstrap_model, counts_to_indices, spatial_blocks
+from ceiling.uncertainty import (
+    bootstrap_counts,
+    bootstrap_model,
+    chunk_uncertainty,
+    counts_to_indices,
+)
 
 
 def synthetic(n: int, k: int, seed: int) -> Samples:
@@ -63,6 +69,7 @@ def main() -> None:
     ap.add_argument("--wedge", type=int, default=0)
     ap.add_argument("--tau", type=float, default=0.95)
     ap.add_argument("--seed", type=int, default=1)
+    ap.add_argument("--chunk", type=int, default=512, help="side of the chunk of cells for (c)")
     a = ap.parse_args()
     warnings.simplefilter("ignore")
     s = synthetic(a.points, a.factors, a.seed)
@@ -112,8 +119,20 @@ def main() -> None:
         f"smoothed vs exact on {a.exact} resamples x {a.factors} factors: |gap| / bootstrap sd "
         f"median {np.median(g):.3f}, 90th percentile {np.quantile(g, 0.9):.3f}, max {g.max():.3f}"
     )
-    labels = spatial_blocks(s.x, s.y, a.block)
-    print(f"(blocks of {a.block:g} m: {labels.max() + 1} occupied)")
+
+    # the replicate kernel and the layers on one chunk of a present and a future grid
+    side = a.chunk
+    rng = np.random.default_rng(a.seed)
+    present = {f.factor: rng.uniform(*f.observed, (side, side)) for f in m.factors}
+    future = {k: v + 0.05 * (f.observed[1] - f.observed[0]) for (k, v), f in zip(present.items(), m.factors)}
+    t0 = time.perf_counter()
+    lay = chunk_uncertainty(mb, present, future)
+    t_kernel = time.perf_counter() - t0
+    print(
+        f"(c) {a.replicates} replicate ceilings and {len(lay)} uncertainty layers on a "
+        f"{side} x {side} chunk (present and future): {t_kernel:.2f} s, "
+        f"{side * side / t_kernel / 1e6:.2f} M cells/s"
+    )
 
 
 if __name__ == "__main__":

@@ -19,6 +19,7 @@ import xarray as xr
 from .errors import DataError
 from .grids import GridSpec, open_layer
 from .kernels import NODATA_CODE, change_kernel, switch_kernel, zone_kernel
+from .kernels_fast import evaluate as evaluate_fast
 from .model import CeilingModel
 from .novelty import check_reference, mess_kernel
 from .scenarios import Climate, ProjectionOptions
@@ -68,7 +69,7 @@ def _project_block(
     s = len(models)
     out = np.empty((4 * s, *arrays[0].shape), dtype=np.float32)
     for i, m in enumerate(models):
-        c, code = m.evaluate(values)
+        c, code = evaluate_fast(m, values)  # fused kernel when the model qualifies
         mess, far = mess_kernel([values[f] for f in m.factor_names], [m.reference[f] for f in m.factor_names])
         if novel == "mask":
             outside = mess < 0
@@ -275,7 +276,7 @@ def has_replicates(models: Sequence[CeilingModel]) -> bool:
 
 def _uncertainty_block(*blocks: np.ndarray, factors: tuple[str, ...], models: tuple[CeilingModel, ...],
                        future: bool, opts: ProjectionOptions) -> np.ndarray:
-    from .uncertainty import replicate_ceilings, uncertainty_layers
+    from .uncertainty import chunk_uncertainty
 
     k = len(factors)
     present = {f: b.astype(np.float64) for f, b in zip(factors, blocks[:k])}
@@ -283,11 +284,10 @@ def _uncertainty_block(*blocks: np.ndarray, factors: tuple[str, ...], models: tu
     names = FUTURE_BOUNDS if future else PRESENT_BOUNDS
     out = np.empty((len(models) * len(names), *blocks[0].shape), dtype=np.float32)
     for i, m in enumerate(models):
-        rp = replicate_ceilings(m, present)
-        rf = replicate_ceilings(m, later) if later is not None else None
-        lay = uncertainty_layers(rp, rf, lower=opts.lower_percentile, upper=opts.upper_percentile,
-                                 release=opts.release_threshold, constraint=opts.constraint_threshold,
-                                 floor=opts.absolute_floor, zero=opts.zero_level)
+        # slab by slab: memory near replicates x slab, whatever the chunk size
+        lay = chunk_uncertainty(m, present, later, lower=opts.lower_percentile, upper=opts.upper_percentile,
+                                release=opts.release_threshold, constraint=opts.constraint_threshold,
+                                floor=opts.absolute_floor, zero=opts.zero_level)
         for j, n in enumerate(names):
             key = _FROM_KERNEL[n] if future else {"ceiling_lower": "present_low", "ceiling_upper": "present_high"}[n]
             out[i * len(names) + j] = lay[key]

@@ -59,6 +59,7 @@ __all__ = [
     "replicate_model",
     "replicate_ceilings",
     "uncertainty_layers",
+    "chunk_uncertainty",
 ]
 
 SOLVER = "smoothed-newton"
@@ -211,7 +212,7 @@ class SmoothedFit:
 
     params: np.ndarray  # (R, p)
     converged: np.ndarray  # (R,) bool
-    iterations: int  # Newton iterations of the slowest fit (summed over screening rounds)
+    iterations: int  # Newton iterations, summed over screening rounds and continuation stages
     near_share: float  # share of points kept in the Newton iterations after screening
 
 
@@ -631,10 +632,20 @@ def replicate_model(model: CeilingModel, b: int) -> CeilingModel:
 def _replicate_predictor(f: FactorCeiling, x: np.ndarray, coef: np.ndarray) -> np.ndarray:
     """Every replicate's unclipped predictor of one factor, shape (R, m), for 1-D ``x``."""
     xs = f._x(x)  # the model's hold/extend rule
-    if isinstance(f.basis, LinearBasis | QuadraticBasis):
-        # the basis's own arithmetic (Horner's rule) with the coefficients broadcast over
-        # replicates: the same floating-point operations as a single-replicate evaluation
-        return f.basis.predictor(xs, coef.T[:, :, np.newaxis])
+    if isinstance(f.basis, QuadraticBasis):
+        # Horner's rule c0 + z * (c1 + z * c2), the floating-point operations of
+        # QuadraticBasis.predictor in the same order (done in place to spare memory traffic)
+        z = f.basis._z(xs)
+        eta = np.multiply(coef[:, 2, np.newaxis], z)
+        eta += coef[:, 1, np.newaxis]
+        eta *= z
+        eta += coef[:, 0, np.newaxis]
+        return eta
+    if isinstance(f.basis, LinearBasis):
+        # c0 + c1 * z, as LinearBasis.predictor
+        eta = np.multiply(coef[:, 1, np.newaxis], f.basis._z(xs))
+        eta += coef[:, 0, np.newaxis]
+        return eta
     return (f.basis.design(xs) @ coef.T).T
 
 
@@ -661,7 +672,7 @@ def replicate_ceilings(model: CeilingModel, values: Mapping[str, Any]) -> np.nda
         low = None
         for f, c in zip(model.factors, flat):
             eta = _replicate_predictor(f, c[sl], np.asarray(reps[f.factor], dtype=np.float64))
-            low = eta if low is None else np.minimum(low, eta)  # NaN propagates
+            low = eta if low is None else np.minimum(low, eta, out=low)  # NaN propagates
         out[:, sl] = inverse_transform(low, model.transform)
     return out.reshape((R, *shape))
 
@@ -711,7 +722,9 @@ def uncertainty_layers(
     p_bad = np.isnan(p).any(axis=0)
 
     def bounds(a: np.ndarray, bad: np.ndarray, name: str) -> None:
-        lo, hi = np.percentile(a, q, axis=0)
+        # replicates last and sorted first: the same numbers, found faster
+        srt = np.sort(np.moveaxis(a, 0, -1), axis=-1)
+        lo, hi = np.percentile(srt, q, axis=-1)
         out[f"{name}_low"] = np.where(bad, np.nan, lo).astype(np.float32)
         out[f"{name}_high"] = np.where(bad, np.nan, hi).astype(np.float32)
 
@@ -729,3 +742,53 @@ def uncertainty_layers(
         share = np.mean(zones == code, axis=0)
         out[key] = np.where(bad | (zones == NODATA_CODE).any(axis=0), np.nan, share).astype(np.float32)
     return out
+
+
+def chunk_uncertainty(
+    model: CeilingModel,
+    present: Mapping[str, Any],
+    future: Mapping[str, Any] | None = None,
+    *,
+    lower: float = 5.0,
+    upper: float = 95.0,
+    release: float = 0.10,
+    constraint: float = 0.10,
+    floor: float = 0.5,
+    zero: float = 0.0,
+    slab: int | None = None,
+) -> dict[str, np.ndarray]:
+    """:func:`uncertainty_layers` of a chunk of factor values, slab by slab.
+
+    The same layers as ``uncertainty_layers(replicate_ceilings(model, present),
+    replicate_ceilings(model, future), ...)``, but the replicate ceilings are held for
+    ``slab`` cells at a time (default ``SLAB_CELLS``), so memory stays near
+    replicates x slab x 8 bytes (times a few) whatever the size of the chunk.
+    """
+    _check_levels(lower, upper)
+    names = model.factor_names
+    shape = np.broadcast_shapes(*(np.shape(model._column(present, k)) for k in names))
+    if future is not None:
+        fshape = np.broadcast_shapes(*(np.shape(model._column(future, k)) for k in names))
+        if fshape != shape:
+            raise ValueError(f"future values have shape {fshape}, present values {shape}; use one grid")
+    flat_p = {k: np.broadcast_to(model._column(present, k), shape).reshape(-1) for k in names}
+    flat_f = None if future is None else {
+        k: np.broadcast_to(model._column(future, k), shape).reshape(-1) for k in names
+    }
+    m = int(np.prod(shape, dtype=np.int64))
+    step = int(slab or SLAB_CELLS)
+    out: dict[str, np.ndarray] = {}
+    for s0 in range(0, m, step):
+        sl = slice(s0, min(m, s0 + step))
+        pr = replicate_ceilings(model, {k: v[sl] for k, v in flat_p.items()})
+        fr = None if flat_f is None else replicate_ceilings(model, {k: v[sl] for k, v in flat_f.items()})
+        part = uncertainty_layers(pr, fr, lower=lower, upper=upper, release=release,
+                                  constraint=constraint, floor=floor, zero=zero)
+        for key, arr in part.items():
+            if key not in out:
+                out[key] = np.empty(m, dtype=np.float32)
+            out[key][sl] = arr
+    if m == 0:  # an empty chunk: the layers, empty
+        pr = np.empty((model.n_replicates, 0))
+        out = uncertainty_layers(pr, None if future is None else pr)
+    return {k: v.reshape(shape) for k, v in out.items()}

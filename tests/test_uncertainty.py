@@ -339,6 +339,18 @@ def test_replicate_kernel_equals_each_replicate_as_its_own_model(transform, outs
     assert np.array_equal(reps2, ref2, equal_nan=True)
 
 
+def test_chunk_uncertainty_slab_by_slab_equals_the_whole_chunk(boot3):
+    # Source: common practice: working in slabs of cells must not change any number.
+    _, mb = boot3
+    pts = _points(np.random.default_rng(6), (23, 41))
+    fut = {k: v * 1.07 - 0.3 for k, v in pts.items()}
+    whole = uncertainty_layers(replicate_ceilings(mb, pts), replicate_ceilings(mb, fut), lower=10, upper=90)
+    slabs = unc.chunk_uncertainty(mb, pts, fut, lower=10, upper=90, slab=100)
+    assert sorted(slabs) == sorted(whole)
+    for k in whole:
+        assert slabs[k].shape == (23, 41) and np.array_equal(slabs[k], whole[k], equal_nan=True)
+
+
 def test_replicate_kernel_needs_replicates():
     # Source: from memory (the project's error rules: one line naming the fix).
     s = _three_factor_samples(120)
