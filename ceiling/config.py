@@ -91,6 +91,38 @@ class FitConfig(_Section):
     bootstrap: int = Field(default=0, le=100_000)
     bootstrap_block: float | None = None
     bootstrap_seed: int = 0
+    # factor screening (ceiling.model.screen_factors): leave factors without a distinct upper
+    # edge, and the less clear of two near-duplicate factors, out of the minimum
+    screen: bool = True
+    keep: list[str] = Field(default_factory=list)
+    drop: list[str] = Field(default_factory=list)
+    duplicate_threshold: float = Field(default=0.9, gt=0, le=1)
+    # how the curves are chosen: each on its own, or together under the minimum (ceiling.joint)
+    method: Literal["per_factor", "joint"] = "joint"
+    joint_starts: int = Field(default=3, ge=1, le=50)
+    # model selection by spatially blocked cross-validation (ceiling.selection)
+    select: list[Literal["basis", "tau", "transform"]] = Field(default_factory=list)
+    cv_block: float | None = None
+    cv_folds: int = Field(default=5, ge=2, le=50)
+
+    @field_validator("cv_block")
+    @classmethod
+    def _positive_cv_block(cls, v: float | None) -> float | None:
+        if v is not None and not (math.isfinite(v) and v > 0):
+            raise ValueError(
+                f"the cross-validation block size must be a positive number of map units; got {v}; "
+                "set fit.cv_block to the side of a square block, or leave it out"
+            )
+        return v
+
+    @model_validator(mode="after")
+    def _keep_drop_disjoint(self) -> FitConfig:
+        both = sorted(set(self.keep) & set(self.drop))
+        if both:
+            raise ValueError(
+                f"factor(s) {', '.join(both)} are listed in both fit.keep and fit.drop; list each in one of them"
+            )
+        return self
 
     @field_validator("bootstrap")
     @classmethod
@@ -152,6 +184,20 @@ class RunConfig(_Section):
                 )
             seen.add(f.name)
         return v
+
+    @model_validator(mode="after")
+    def _known_screen_names(self) -> RunConfig:
+        names = [f.name for f in self.factors]
+        for key in ("keep", "drop"):
+            unknown = [n for n in getattr(self.fit, key) if n not in names]
+            if unknown:
+                raise ValueError(
+                    f"fit.{key} names factor(s) {', '.join(unknown)} that the config does not list; "
+                    f"use names from [[factors]] ({', '.join(names)})"
+                )
+        if len(self.fit.drop) >= len(names):
+            raise ValueError("fit.drop leaves no factor in the minimum; keep at least one factor")
+        return self
 
     @property
     def factor_names(self) -> list[str]:

@@ -9,7 +9,8 @@ The scenario exercises the whole tool: four climate factors on a present-day gri
 two emission scenarios, three climate models and two periods (one model delivers CF NetCDF in
 other units), a survey of counts for three species, and the true per-factor ceilings that
 generated the counts, combined by the law of the minimum, so that a fit can be checked against
-the truth.
+the truth. It also holds invented zones (fictional reserves and management units, ``zones.gpkg``)
+for the zonal summaries.
 """
 
 from __future__ import annotations
@@ -29,7 +30,7 @@ from scipy import ndimage
 __all__ = [
     "DEFAULT_SEED", "FACTORS", "SCENARIOS", "MODELS", "PERIODS", "NODATA", "TRANSFORM",
     "make_demo", "make_land", "make_present", "make_future", "ceiling_curve", "true_ceiling",
-    "load_truth",
+    "load_truth", "DEMO_ZONES", "demo_zones", "write_demo_zones",
 ]
 
 DEFAULT_SEED = 20261202
@@ -301,6 +302,71 @@ def _survey_lines(present: dict[str, np.ndarray], land: np.ndarray, seed: int) -
     return lines
 
 
+# Invented zones for the zonal summaries (``ceiling summarize``, ``[outputs.zones]``): fictional
+# reserves (id, name, centre lon/lat, radius in degrees of latitude) and fictional management
+# units (id, name, west and east edges north of lat -44, the same south of it). Every name is made up.
+DEMO_RESERVES = (
+    ("R01", "Glimmerwort Ridge Reserve", -136.0, -42.0, 0.45),
+    ("R02", "Vortle Fen Reserve", -138.0, -43.2, 0.35),
+    ("R03", "Quondle Point Reserve", -131.6, -42.6, 0.30),
+    ("R04", "Southern Tussock Reserve", -135.0, -46.1, 0.40),
+    ("R05", "Cape Lumen Coastal Reserve", -139.1, -42.9, 0.35),
+)
+DEMO_UNITS = (
+    ("M01", "West Fells Management Unit", (-139.9, -136.5), (-139.9, -137.0)),
+    ("M02", "Central Basin Management Unit", (-136.5, -133.5), (-137.0, -133.2)),
+    ("M03", "Eastern Lowlands Management Unit", (-133.5, -130.1), (-133.2, -130.1)),
+)
+DEMO_ZONES = "zones.gpkg"
+
+
+def _reserve_ring(lon: float, lat: float, radius: float, phase: float) -> list[tuple[float, float]]:
+    """An irregular closed outline around (lon, lat): 24 vertices, radius varying by up to 26 %."""
+    theta = np.linspace(0.0, 2.0 * np.pi, 24, endpoint=False)
+    r = radius * (1.0 + 0.18 * np.sin(3.0 * theta + phase) + 0.08 * np.cos(5.0 * theta))
+    xs = lon + r * np.cos(theta) / np.cos(np.radians(lat))  # roughly round on the ground
+    ys = lat + r * np.sin(theta)
+    return [(round(float(x), 5), round(float(y), 5)) for x, y in zip(xs, ys)]
+
+
+def demo_zones():
+    """The invented reserves and management units as a GeoDataFrame (EPSG:4326)."""
+    import geopandas as gpd
+    from shapely.geometry import Polygon
+
+    ids, names, kinds, geoms = [], [], [], []
+    for k, (zid, name, lon, lat, radius) in enumerate(DEMO_RESERVES):
+        ids.append(zid)
+        names.append(name)
+        kinds.append("reserve")
+        geoms.append(Polygon(_reserve_ring(lon, lat, radius, phase=1.3 * k)))
+    north, mid, south = -40.1, -44.0, -47.9
+    for zid, name, (w_n, e_n), (w_s, e_s) in DEMO_UNITS:
+        ids.append(zid)
+        names.append(name)
+        kinds.append("management unit")
+        ring = [(w_n, north), (e_n, north), (e_n, mid), (e_s, mid), (e_s, south), (w_s, south), (w_s, mid), (w_n, mid)]
+        geoms.append(Polygon([p for i, p in enumerate(ring) if p != ring[i - 1]]))  # no repeated vertices
+    return gpd.GeoDataFrame({"id": ids, "name": names, "kind": kinds, "note": [NOTE] * len(ids)},
+                            geometry=geoms, crs="EPSG:4326")
+
+
+def write_demo_zones(path: str | Path) -> Path:
+    """Write :func:`demo_zones` as a GeoPackage (layer ``zones``) with a fixed timestamp, so the
+    file is byte-identical on every run."""
+    import pyogrio
+
+    from .zones import gpkg_writing
+
+    path = Path(path)
+    if path.exists():
+        path.unlink()
+    with gpkg_writing():
+        pyogrio.write_dataframe(demo_zones(), path, layer="zones", driver="GPKG",
+                                layer_options={"DESCRIPTION": "invented reserves and management units of the invented demo island"})
+    return path
+
+
 def _readme(seed: int, land_share: float) -> str:
     """The README of the output folder."""
     species = "\n".join(f"- `{code}` ({sp['label']}), {sp['n_sites']} sites:\n  "
@@ -344,6 +410,10 @@ rows, north-up. Land is {100 * land_share:.1f} % of the cells; sea cells are nod
 - `survey.csv`: `site_id,species,lon,lat,count`, one row per site and species; each species
   was surveyed at its own random land sites.
 - `truth.json`: the true ceiling curve of every species and factor, and the noise model.
+- `zones.gpkg`: **invented** zones for the zonal summaries (`ceiling summarize`,
+  `[outputs.zones]` in `configs/demo.toml`): {len(DEMO_RESERVES)} fictional reserves and {len(DEMO_UNITS)} fictional
+  management units of the invented island, layer `zones`, EPSG:4326, attributes `id`, `name`,
+  `kind` and `note`. The names are made up and refer to no real place.
 
 Scenarios: {", ".join(SCENARIOS)}. Models: {", ".join(MODELS)}. Periods: {", ".join(PERIODS)}.
 Futures warm everywhere and precipitation changes by -25 % to +15 %, so part of the island
@@ -397,7 +467,7 @@ def make_demo(out_dir: str | Path, *, seed: int = DEFAULT_SEED) -> dict[str, Any
     }
     (out / "truth.json").write_text(json.dumps(truth, indent=2) + "\n", **TEXT)
     (out / "README.md").write_text(_readme(seed, float(land.mean())), **TEXT)
-    written += [survey, out / "truth.json", out / "README.md"]
+    written += [survey, out / "truth.json", out / "README.md", write_demo_zones(out / DEMO_ZONES)]
     return {"out_dir": str(out), "files": [str(p) for p in written],
             "n_files": len(written), "land_cells": int(land.sum()),
             "n_sites": {code: sp["n_sites"] for code, sp in SPECIES.items()}}

@@ -9,8 +9,9 @@ from __future__ import annotations
 
 import hashlib
 import warnings
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import rasterio
@@ -26,6 +27,8 @@ from .outputs.names import DIAGNOSTICS_FILE, MODEL_FILE, fit_figure_name, fit_pa
 from .samples import Samples, load_samples
 from .uncertainty import bootstrap_model
 
+SELECTION_FILE = "selection.csv"
+
 __all__ = ["FitRun", "fit_config", "write_fit", "fit_to_folder", "factor_specs", "config_inputs"]
 
 
@@ -36,6 +39,8 @@ class FitRun:
     models: ModelSet
     samples: dict[str, Samples]
     warnings: list[str] = field(default_factory=list)
+    # model selection by blocked cross-validation (ceiling.selection), when fit.select is set
+    selection: Any = None
 
     def summary(self, *, detail: bool = False) -> str:
         """A table of every species and factor; ``detail=True`` adds coefficients."""
@@ -48,12 +53,27 @@ class FitRun:
         head = f"  {'species':<10} {'factor':<12} {'n':>5} {'above':>6} {'R1':>6} {'peak at':>10}  {'wedge p':>9}  verdict"
         lines.append(head)
         for m in self.models:
-            for f in m.factors:
+            for f in m.all_factors:
                 d = f.diagnostics
+                out = "" if f.in_minimum else f"; left out of the minimum: {f.screened_reason}"
                 lines.append(
                     f"  {m.species:<10} {f.factor:<12} {d.n:>5d} {d.share_above:>6.3f} {d.pseudo_r1:>6.3f} "
-                    f"{d.peak_at:>10.4g}  {d.wedge_p:>9.3g}  {d.verdict}"
+                    f"{d.peak_at:>10.4g}  {d.wedge_p:>9.3g}  {d.verdict}{out}"
                 )
+        for m in self.models:
+            info = dict(m.fit_info or {})
+            if info.get("method") == "joint":
+                lines.append(
+                    f"{m.species}: joint fit, mean check loss {info['objective_start']:.4g} -> "
+                    f"{info['objective_end']:.4g}; share above the combined ceiling "
+                    f"{info['share_above']:.3f} (expected about {1 - m.tau:.3f})"
+                )
+        if self.selection is not None:
+            ch = ", ".join(f"{k}={v}" for k, v in self.selection.chosen.items())
+            lines.append(
+                f"selected by spatially blocked cross-validation ({', '.join(self.selection.selected)}; "
+                f"{len(self.selection.table)} candidates, table in selection.csv): {ch}"
+            )
         if self.warnings:
             lines.append(f"{len(self.warnings)} warning(s): " + "; ".join(self.warnings))
         return "\n".join(lines)
@@ -109,10 +129,26 @@ def fit_config(cfg: RunConfig) -> FitRun:
         for sp, s in samples.items():
             if s.n == 0:
                 raise DataError(f"species '{sp}': no usable survey points; check the survey and the layers")
+        tau, transform, selection = cfg.fit.tau, cfg.fit.transform, None
+        if cfg.fit.select:
+            from .selection import select_settings
+
+            selection = select_settings(
+                samples, specs, select=cfg.fit.select, tau=tau, transform=transform,
+                block=cfg.fit.cv_block, folds=cfg.fit.cv_folds, seed=cfg.fit.seed,
+                fit_options=dict(outside=cfg.fit.outside, screen=False, keep=cfg.fit.keep,
+                                 drop=cfg.fit.drop, method=cfg.fit.method, joint_starts=1),
+            )
+            tau, transform = selection.chosen["tau"], selection.chosen["transform"]
+            if "basis" in selection.chosen:
+                specs = [replace(f, basis=selection.chosen["basis"], df=selection.chosen["df"]) for f in specs]
+        for sp, s in samples.items():
             models[sp] = fit(
-                s, specs, tau=cfg.fit.tau, transform=cfg.fit.transform, outside=cfg.fit.outside,
+                s, specs, tau=tau, transform=transform, outside=cfg.fit.outside,
                 wedge_replicates=cfg.fit.wedge_replicates, wedge_alpha=cfg.fit.wedge_alpha,
-                seed=cfg.fit.seed,
+                seed=cfg.fit.seed, screen=cfg.fit.screen, keep=cfg.fit.keep, drop=cfg.fit.drop,
+                duplicate_threshold=cfg.fit.duplicate_threshold, method=cfg.fit.method,
+                joint_starts=cfg.fit.joint_starts,
             )
             if cfg.fit.bootstrap > 0:
                 models[sp] = bootstrap_model(
@@ -132,7 +168,7 @@ def fit_config(cfg: RunConfig) -> FitRun:
         "species_data_sha256": {sp: s.sha256 for sp, s in samples.items()},
         "warnings": len(caught_all),
     }
-    return FitRun(ModelSet(models, provenance), samples, caught_all)
+    return FitRun(ModelSet(models, provenance), samples, caught_all, selection)
 
 
 def write_fit(run: FitRun, out_dir: Path) -> list[Path]:
@@ -141,10 +177,12 @@ def write_fit(run: FitRun, out_dir: Path) -> list[Path]:
     written = [run.models.save(out_dir / MODEL_FILE)]
     table = run.models.diagnostics_table()
     written.append(atomic_write_text(out_dir / DIAGNOSTICS_FILE, table.to_csv(index=False, float_format="%.6g")))
+    if run.selection is not None:
+        written.append(atomic_write_text(out_dir / SELECTION_FILE, run.selection.table.to_csv(index=False, float_format="%.6g")))
     for m in run.models:
         s = run.samples[m.species]
         (out_dir / fit_panel_name(m.species)).parent.mkdir(parents=True, exist_ok=True)
-        for fc in m.factors:
+        for fc in m.all_factors:
             written.append(
                 fit_figure(fc, np.asarray(s.values[fc.factor]), s.abundance, out_dir / fit_figure_name(m.species, fc.factor), species=m.species)
             )

@@ -122,6 +122,11 @@ def inspect_layer(ref: LayerRef, *, factor: str) -> LayerInfo:
                 raise DataError(f"{where}: the grid has rotation terms in its transform; warp it to a north-up grid first")
             if t.a <= 0 or t.e >= 0:
                 raise DataError(f"{where}: the grid is not north-up (transform {tuple(t)[:6]}); warp it first")
+            if src.nodata is None and (bad := sentinel_in_sample(src)) is not None:
+                raise DataError(
+                    f"{where}: declares no nodata value but holds {bad:g}, a usual nodata marker; declare nodata "
+                    f"(e.g. gdal_edit.py -a_nodata {bad:g} {path.name}) so those cells are not read as values"
+                )
             units = ref.units or (src.units[0] if src.units and src.units[0] else None) or src.tags(1).get("units")
             grid = GridSpec(src.crs.to_wkt(), tuple(t)[:6], src.width, src.height)  # type: ignore[arg-type]
             pack_scale = float(src.scales[0]) if src.scales and src.scales[0] is not None else 1.0
@@ -129,6 +134,29 @@ def inspect_layer(ref: LayerRef, *, factor: str) -> LayerInfo:
             return LayerInfo(gdal_name(ref), grid, src.nodata, src.dtypes[0], units or None, pack_scale, pack_offset)
     except RasterioIOError as exc:
         raise InputFileError(f"{where}: cannot be opened as a raster ({str(exc).splitlines()[0]}); is it a complete GeoTIFF or NetCDF?") from None
+
+
+# values that exports write for "no data" when the file does not declare it
+SENTINELS = (-9999.0, -99999.0, -32768.0, -32767.0, -999.0)
+SENTINEL_FLOAT_MIN = -1e38  # -3.4e38 (float32 lowest) and -1.7e308
+
+
+def sentinel_in_sample(src: Any, size: int = 256) -> float | None:
+    """A nodata-like sentinel found in a decimated sample (at most ``size`` x ``size`` cells, read
+    from overviews or by skipping rows and columns) of an open single-band raster, or None."""
+    try:
+        sample = src.read(1, out_shape=(min(size, src.height), min(size, src.width)), masked=False)
+    except (RasterioIOError, rasterio.errors.RasterioError, ValueError):
+        return None  # unreadable data is reported when the layer is read
+    vals = np.asarray(sample, dtype=np.float64)
+    if np.dtype(src.dtypes[0]).kind == "f":
+        low = vals[np.isfinite(vals)]
+        if low.size and low.min() <= SENTINEL_FLOAT_MIN:
+            return float(np.float32(low.min())) if low.min() > -3.5e38 else float(low.min())
+    for v in SENTINELS:
+        if np.any(vals == v):
+            return v
+    return None
 
 
 def template_grid(ref: LayerRef, *, factor: str) -> GridSpec:

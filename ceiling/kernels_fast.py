@@ -152,25 +152,15 @@ def _predictor_scalar(x, j, kind, center, scale, clip, lo, hi, coef, knots, n_kn
 _BLOCK = 2048  # cells per block of the compiled loop: the running minimum stays in the L1 cache
 
 
-def _update(e, i, j, best, arg, bad):
-    """Fold factor ``j``'s predictor into the running minimum of cell ``i`` of the block."""
-    if j == 0:
-        best[i] = e
-        arg[i] = 0
-        bad[i] = e != e
-    else:
-        bad[i] = bad[i] | (e != e)
-        lower = e < best[i]
-        best[i] = e if lower else best[i]
-        arg[i] = j if lower else arg[i]
-
-
 def _loop(xs, kind, center, scale, clip, lo, hi, coef, knots, n_knots, transform, out_c, out_code):
     n = out_c.shape[0]
     k = len(xs)
+    # block scratch, all float64 so that the fold loop vectorises (the code and the NaN flag
+    # are small whole numbers held as floats)
+    eb = np.empty(_BLOCK)
     best = np.empty(_BLOCK)
-    arg = np.empty(_BLOCK, dtype=np.uint8)
-    bad = np.empty(_BLOCK, dtype=np.bool_)
+    arg = np.empty(_BLOCK)
+    bad = np.empty(_BLOCK)
     for b0 in range(0, n, _BLOCK):
         b1 = min(n, b0 + _BLOCK)
         m = b1 - b0
@@ -183,38 +173,59 @@ def _loop(xs, kind, center, scale, clip, lo, hi, coef, knots, n_knots, transform
             ce, sc = center[j], scale[j]
             c0, c1 = coef[j, 0], coef[j, 1]
             kd = kind[j]
-            if kd == QUADRATIC:
-                c2 = coef[j, 2]
+            c2 = coef[j, 2] if kd == QUADRATIC else 0.0
+            jj = np.float64(j)
+            if kd == QUADRATIC:  # predictors of the block into eb: one tight loop per basis
                 for i in range(m):
                     v = np.float64(x[i])
                     v = lo_j if v < lo_j else v
                     v = hi_j if v > hi_j else v
                     z = (v - ce) / sc
-                    _update(c0 + z * (c1 + z * c2), i, j, best, arg, bad)
+                    eb[i] = c0 + z * (c1 + z * c2)
             elif kd == LINEAR:
                 for i in range(m):
                     v = np.float64(x[i])
                     v = lo_j if v < lo_j else v
                     v = hi_j if v > hi_j else v
-                    _update(c0 + c1 * ((v - ce) / sc), i, j, best, arg, bad)
+                    eb[i] = c0 + c1 * ((v - ce) / sc)
             else:
                 for i in range(m):
-                    e = predictor(np.float64(x[i]), j, kind, center, scale, clip, lo, hi, coef, knots, n_knots)
-                    _update(e, i, j, best, arg, bad)
+                    eb[i] = predictor(np.float64(x[i]), j, kind, center, scale, clip, lo, hi, coef, knots, n_knots)
+            if j == 0:  # fold into the running minimum (strict <: the first factor wins ties)
+                for i in range(m):
+                    e = eb[i]
+                    best[i] = e
+                    arg[i] = 0.0
+                    bad[i] = 1.0 if e != e else 0.0
+            else:
+                for i in range(m):
+                    e = eb[i]
+                    bad[i] = 1.0 if e != e else bad[i]
+                    lower = e < best[i]
+                    best[i] = e if lower else best[i]
+                    arg[i] = jj if lower else arg[i]
+        oc = out_c[b0:b1]
+        ok = out_code[b0:b1]
+        if transform == 1:  # back to abundance units, one loop per transform
+            for i in range(m):
+                e = best[i] if best[i] > 0.0 else 0.0
+                best[i] = math.expm1(e)
+        elif transform == 2:
+            for i in range(m):
+                e = best[i] if best[i] > 0.0 else 0.0
+                best[i] = e * e
+        else:
+            for i in range(m):
+                best[i] = best[i] if best[i] > 0.0 else 0.0
         for i in range(m):
-            e = best[i] if best[i] > 0.0 else 0.0
-            if transform == 1:
-                e = math.expm1(e)
-            elif transform == 2:
-                e = e * e
-            out_c[b0 + i] = np.nan if bad[i] else e
-            out_code[b0 + i] = 255 if bad[i] else arg[i]
+            oc[i] = np.nan if bad[i] != 0.0 else best[i]
+            ok[i] = 255 if bad[i] != 0.0 else np.uint8(arg[i])
 
 
 if HAVE_NUMBA:
-    predictor = numba.njit(_predictor_scalar, nogil=True, cache=True)
-    _update = numba.njit(_update, nogil=True, cache=True)
-    _fused = numba.njit(_loop, nogil=True, cache=True)
+    # error_model="numpy": no zero-division checks in the loops (scales are > 0), so they vectorise
+    predictor = numba.njit(_predictor_scalar, nogil=True, cache=True, error_model="numpy")
+    _fused = numba.njit(_loop, nogil=True, cache=True, error_model="numpy")
 else:  # pragma: no cover
     predictor = _predictor_scalar
     _fused = None

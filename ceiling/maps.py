@@ -4,34 +4,40 @@ Every figure is built from the files of a run folder (the GeoTIFFs, ``summary.cs
 ``transitions.csv``, ``model.json``), so it can be remade at any time with
 :func:`make_figures`. Figures written, all under ``figures/``:
 
-- one map sheet per species and climate (:func:`climate_sheet_name`): the present (ceiling,
+- a map sheet per species and climate (:func:`climate_sheet_name`): the present (ceiling,
   limiting factor, novelty), each scenario / climate model / period (ceiling, change, zone,
-  limiting factor, novelty) and each ensemble (median ceiling, median change with low-agreement
-  cells hatched, zone, most common limiting factor, agreement); novel-climate cells are hatched
-  on the novelty maps;
-- one sheet of bootstrap bounds per climate when the run has them (:func:`uncertainty_sheet_name`);
+  limiting factor, novelty) and each ensemble (median ceiling, median change with the cells of
+  low agreement hatched, zone, most common limiting factor, agreement); novel-climate
+  (extrapolated) cells are hatched on the novelty maps;
 - comparison sheets (:func:`comparison_sheet_name`): scenarios across, periods down, one sheet
-  per climate model and one for the ensemble, one shared colour bar or legend;
+  per climate model and one for the ensemble, with one shared colour bar or legend (change and
+  zone; with bootstrap layers also the probabilities of release and of constraint);
+- with bootstrap layers, the bounds of the present ceiling (:func:`uncertainty_sheet_name`);
 - limiting-factor figures (:func:`limiting_figure_name`): the area limited by each factor now
   and under each climate (stacked bars), and the present-to-future transition matrices with the
-  areas written in the cells;
-- maps of any extra layers under ``community/`` when present.
+  areas written in the cells (both from ``transitions.csv``);
+- a sheet of the community layers per climate when the run has ``community/``.
 
 Conventions: north up; axes in the grid's CRS units (degrees with a graticule for geographic
-grids); nodata drawn as a white background inside a grey outline of the valid cells; continuous
-colour maps perceptually uniform (viridis, cividis) or diverging and colour-blind readable
-(RdBu for change, centred on zero with symmetric limits shared by every climate of a species;
-PRGn for novelty); categorical colours from :mod:`ceiling.categories`, the same as in the
-GeoTIFF colour tables. Big grids are read decimated (at most :data:`MAX_SIDE` cells along the
-longer side, through the GeoTIFF overviews), so figures of huge grids stay cheap.
+grids); nodata drawn as a neutral grey background inside a darker outline of the valid cells;
+continuous colour maps perceptually uniform (viridis, cividis) or diverging and colour-blind
+readable (RdBu for change, centred on zero with symmetric limits shared by every climate of a
+species; PRGn for novelty); categorical colours from :mod:`ceiling.categories`, the same as
+in the GeoTIFF colour tables. Big grids are read decimated (at most :data:`MAX_SIDE` cells
+along the longer side, through the GeoTIFF overviews), so figures of huge grids stay cheap.
+Figures have fixed sizes in inches (a whole number of pixels at :data:`DPI`); no layout engine.
 """
 
 from __future__ import annotations
 
+import functools
 import json
 import math
-import xml.etree.ElementTree as ET
-from collections.abc import Iterable, Sequence
+import multiprocessing
+import os
+import warnings
+from collections.abc import Callable, Iterable, Sequence
+from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -49,7 +55,14 @@ from matplotlib.figure import Figure  # noqa: E402
 from matplotlib.patches import Patch  # noqa: E402
 from rasterio.enums import Resampling  # noqa: E402
 
-from .categories import ENSEMBLE_ZONES, EXTRAPOLATION, ROBUSTNESS, ZONES, Category, factor_categories  # noqa: E402
+from .categories import (  # noqa: E402
+    ENSEMBLE_ZONES,
+    EXTRAPOLATION,
+    ROBUSTNESS,
+    ZONES,
+    Category,
+    factor_categories,
+)
 from .outputs.atomic import atomic_path  # noqa: E402
 from .outputs.names import (  # noqa: E402
     DIAGNOSTICS_FILE,
@@ -65,14 +78,15 @@ from .outputs.names import (  # noqa: E402
 __all__ = [
     "DPI", "MAX_SIDE", "MapLayer", "RunInfo", "read_layer", "run_info", "species_limits",
     "climate_sheet", "uncertainty_sheet", "comparison_sheet", "limiting_area_figure", "switch_matrix_figure",
-    "layer_figure", "save_figure", "make_figures", "legend_labels",
+    "community_sheet", "save_figure", "make_figures", "figure_tasks", "legend_labels", "climate_title",
     "climate_sheet_name", "uncertainty_sheet_name", "comparison_sheet_name", "limiting_figure_name",
     "community_figure_name", "PRESENT_PANELS", "FUTURE_PANELS", "ENSEMBLE_PANELS", "UNCERTAINTY_PANELS",
+    "COMPARED_PROBABILITIES", "TITLES", "NOVEL_HATCH_LABEL", "LOW_AGREEMENT_LABEL",
 ]
 
 DPI = 200
 MAX_SIDE = 1000  # cells read along the longer side of a grid; bigger grids are read decimated
-NODATA_BG = "#ffffff"
+NODATA_BG = "#bdbdbd"  # neutral grey, apart from every class colour and the light ends of the scales
 OUTLINE = "#636363"
 HATCH_COLOUR = "#252525"
 HATCH = "//////"
@@ -85,6 +99,7 @@ PRESENT_PANELS = ("ceiling", "limiting", "novelty")
 FUTURE_PANELS = ("ceiling", "change", "zone", "limiting", "novelty")
 ENSEMBLE_PANELS = ("median_ceiling", "median_change", "zone", "limiting", "agreement")
 UNCERTAINTY_PANELS = ("ceiling_lower", "ceiling_upper", "change_lower", "change_upper", "p_release", "p_constraint")
+COMPARED_PROBABILITIES = ("p_release", "p_constraint")  # bootstrap layers drawn on comparison sheets
 CEILING_LIKE = ("ceiling", "median_ceiling", "mean_ceiling", "ceiling_lower", "ceiling_upper")
 CHANGE_LIKE = ("change", "median_change", "mean_change", "change_lower", "change_upper", "change_min", "change_max")
 SHARE_LIKE = ("agreement", "limiting_share", "p_release", "p_constraint")
@@ -123,6 +138,19 @@ LEGEND_TITLES = {"zone": "zone class", "limiting": "limiting factor", "novel_fac
 NOVEL_HATCH_LABEL = "novel climate (outside the survey's range)"
 LOW_AGREEMENT_LABEL = "low agreement between climate models"
 CAUTION = "A ceiling is a potential upper limit of abundance, not a forecast."
+STYLE = {"hatch.linewidth": 0.35, "hatch.color": HATCH_COLOUR, "font.size": 7, "svg.fonttype": "none",
+         "axes.unicode_minus": True, "svg.hashsalt": "ceiling"}
+
+
+def _styled(fn: Callable[..., Any]) -> Callable[..., Any]:
+    """Build (and save) figures under the module's style, whatever the caller's rcParams."""
+
+    @functools.wraps(fn)
+    def wrapper(*args: Any, **kwargs: Any) -> Any:
+        with matplotlib.rc_context(STYLE):
+            return fn(*args, **kwargs)
+
+    return wrapper
 
 
 # --- names -------------------------------------------------------------------------------------------
@@ -147,7 +175,9 @@ def limiting_figure_name(species: str, kind: str, fmt: str = "png") -> Path:
 
 
 def community_figure_name(rel: Path, fmt: str = "png") -> Path:
-    return Path(FIGURES_DIR) / rel.with_suffix(f".{fmt}")
+    """``figures/community/present/maps.png``, ``figures/community/{scenario}/{model}/{period}/maps.png``
+    for the folder ``rel`` (``community/...``) of community layers."""
+    return Path(FIGURES_DIR) / rel / f"maps.{fmt}"
 
 
 # --- what a run folder holds ---------------------------------------------------------------------------
@@ -203,9 +233,12 @@ def run_info(run_dir: str | Path) -> RunInfo:
     labels: dict[str, dict[str, str]] = {}
     model_file = root / MODEL_FILE
     if model_file.is_file():
+        # the factors in each species' minimum, in the order of the limiting-factor codes (the
+        # order the GeoTIFF writer used); screened-out factors are not among them
         doc = json.loads(model_file.read_text(encoding="utf-8"))
         for sp, m in doc.get("species", {}).items():
-            factors[sp] = tuple(f["name"] for f in m["factors"])
+            kept = [f for f in m["factors"] if f.get("in_minimum", True)]
+            factors[sp] = tuple(f["name"] for f in kept)
             labels[sp] = {f["name"]: f.get("label") or f["name"] for f in m["factors"]}
     elif (root / DIAGNOSTICS_FILE).is_file():
         diag = pd.read_csv(root / DIAGNOSTICS_FILE, dtype=str, keep_default_na=False)
@@ -228,7 +261,6 @@ class MapLayer:
     extent: tuple[float, float, float, float]  # left, right, bottom, top
     crs: Any
     full_shape: tuple[int, int]
-    colormap: dict[int, tuple[int, int, int, int]] | None = None
 
     @property
     def valid(self) -> np.ndarray:
@@ -245,16 +277,10 @@ def read_layer(path: str | Path, *, categorical: bool = False, max_side: int = M
         resampling = Resampling.nearest if categorical else Resampling.average
         a = src.read(1, out_shape=shape, masked=True, resampling=resampling)
         b = src.bounds
-        cmap = None
-        if categorical:
-            try:
-                cmap = src.colormap(1)
-            except ValueError:
-                cmap = None
         crs = src.crs
     if not categorical:
         a = np.ma.masked_invalid(a.astype(np.float64))
-    return MapLayer(a, (b.left, b.right, b.bottom, b.top), crs, (h, w), cmap)
+    return MapLayer(a, (b.left, b.right, b.bottom, b.top), crs, (h, w))
 
 
 def _finite(layer: MapLayer) -> np.ndarray:
@@ -283,9 +309,13 @@ class Limits:
 
 
 def species_limits(info: RunInfo, species: str) -> Limits:
+    """The colour limits of the layers drawn for a species, over all its climates."""
     ceil_max, change_max, nov_min, nov_max = 0.0, 0.0, 0.0, 0.0
     for key in info.climates[species]:
-        for layer in CEILING_LIKE + CHANGE_LIKE + ("novelty",):
+        drawn = ("ceiling", "median_ceiling", "change", "median_change", "novelty")
+        if key[0] == "present":
+            drawn += ("ceiling_lower", "ceiling_upper")  # the present's uncertainty sheet
+        for layer in drawn:
             if not info.has(species, key, layer):
                 continue
             v = _finite(read_layer(info.path(species, key, layer)))
@@ -379,11 +409,16 @@ def _centres(layer: MapLayer) -> tuple[np.ndarray, np.ndarray]:
 
 
 def _outline(ax: Any, layer: MapLayer) -> None:
+    """A thin grey line around the valid cells (contour lines straight from contourpy: cheap)."""
     valid = layer.valid
     if valid.all() or not valid.any():
         return
+    import contourpy
+    from matplotlib.collections import LineCollection
+
     x, y = _centres(layer)
-    ax.contour(x, y, valid.astype(np.float32), levels=[0.5], colors=OUTLINE, linewidths=0.45)
+    lines = contourpy.contour_generator(x, y, valid.astype(np.float64), line_type="Separate").lines(0.5)
+    ax.add_collection(LineCollection(lines, colors=OUTLINE, linewidths=0.45, zorder=2), autolim=False)
 
 
 def _hatch(ax: Any, layer: MapLayer, mask: np.ndarray) -> bool:
@@ -448,6 +483,9 @@ class _Panel:
     hatch: np.ndarray | None = None
     hatch_label: str = ""
     title: str = ""
+    cmap: str | None = None  # colour map and norm when not the layer's usual ones (community layers)
+    norm: Any = None
+    scale: str | None = None
 
 
 def _load_panel(info: RunInfo, species: str, key: tuple[str, str, str], layer: str) -> _Panel | None:
@@ -476,8 +514,8 @@ def _draw_panel(ax: Any, p: _Panel, limits: Limits, aspect: float, *, xlabels: b
         ax.imshow(_rgba(p.layer.data, p.categories), extent=p.layer.extent, origin="upper",
                   interpolation="nearest", aspect=aspect, zorder=1)
     else:
-        cmap_name, norm = _norm_for(p.name, limits)
-        cmap = matplotlib.colormaps[cmap_name].with_extremes(bad=(0, 0, 0, 0))
+        cmap_name, norm = (p.cmap, p.norm) if p.norm is not None else _norm_for(p.name, limits)
+        cmap = matplotlib.colormaps[cmap_name or CMAP_CEILING].with_extremes(bad=(0, 0, 0, 0))
         im = ax.imshow(p.layer.data, cmap=cmap, norm=norm, extent=p.layer.extent, origin="upper",
                        interpolation="nearest", aspect=aspect, zorder=1)
     _outline(ax, p.layer)
@@ -494,9 +532,10 @@ def _side_key(fig: Figure, ax: Any, rect: Sequence[float], p: _Panel, im: Any) -
     if im is not None:
         cax = fig.add_axes((x, y + 0.16 * h, w * 0.11, 0.68 * h))
         cb = fig.colorbar(im, cax=cax)
+        cb.ax.yaxis.set_major_locator(ticker.MaxNLocator(5, integer=isinstance(p.norm, mcolors.BoundaryNorm)))
         cb.ax.tick_params(labelsize=5.5, length=2, pad=1)
         cb.outline.set_linewidth(0.4)
-        cb.set_label(SCALE_LABELS.get(p.name, ""), fontsize=5.5, labelpad=2)
+        cb.set_label(p.scale if p.scale is not None else SCALE_LABELS.get(p.name, ""), fontsize=5.5, labelpad=2)
         if hatch:
             ax.legend(handles=hatch, loc="upper left", bbox_to_anchor=(0.0, -0.04), fontsize=5.5, frameon=False,
                       handlelength=1.4, borderaxespad=0.0)
@@ -556,24 +595,31 @@ def climate_title(species: str, key: tuple[str, str, str]) -> str:
 def _sheet(info: RunInfo, species: str, key: tuple[str, str, str], layers: Sequence[str], limits: Limits,
            title: str, note: str) -> Figure | None:
     panels = [p for p in (_load_panel(info, species, key, n) for n in layers) if p is not None]
+    return _panel_sheet(panels, limits, title, note)
+
+
+def _panel_sheet(panels: list[_Panel], limits: Limits, title: str, note: str) -> Figure | None:
+    """Map panels three (four) to a row, each with its colour bar or legend, and a note."""
     if not panels:
         return None
     ratio, aspect = _map_ratio(panels[0].layer.extent, panels[0].layer.crs)
-    ncols = min(3, len(panels) + 1)
-    nrows = math.ceil((len(panels) + 1) / ncols)
+    n = len(panels)
+    ncols = 2 if n == 3 else min(3, n + 1)
+    nrows = math.ceil((n + 1) / ncols)
     g = _Grid(nrows, ncols, ratio, panel_w=2.35, side_w=1.05, wgap=0.25)
     fig = _new_figure(g.width, g.height)
     for i, p in enumerate(panels):
         r, c = divmod(i, ncols)
         ax = fig.add_axes(g.panel(r, c))
-        im = _draw_panel(ax, p, limits, aspect, ylabels=c == 0)
+        # degrees (or CRS units) on the outer edges only: every panel has the same extent
+        im = _draw_panel(ax, p, limits, aspect, xlabels=i + ncols >= n, ylabels=c == 0)
         _side_key(fig, ax, g.side(r, c), p, im)
         if i == 0:
             _north_arrow(ax)
     r, c = divmod(len(panels), ncols)
     tx = fig.add_axes(g.panel(r, c))
     tx.set_axis_off()
-    tx.text(0.0, 1.0, note, ha="left", va="top", fontsize=6.5, wrap=True, transform=tx.transAxes, linespacing=1.5)
+    tx.text(0.0, 1.0, note, ha="left", va="top", fontsize=6.5, transform=tx.transAxes, linespacing=1.5)
     _titles(fig, g, title)
     return fig
 
@@ -588,6 +634,7 @@ def _note(info: RunInfo, species: str, key: tuple[str, str, str]) -> str:
             f"a potential upper\nlimit, not a forecast.\n\n{hatch}\n\nResults need expert review.")
 
 
+@_styled
 def climate_sheet(info: RunInfo, species: str, key: tuple[str, str, str], limits: Limits | None = None) -> Figure | None:
     """The map sheet of one species and climate (present, one climate model, or the ensemble)."""
     limits = limits or species_limits(info, species)
@@ -595,6 +642,7 @@ def climate_sheet(info: RunInfo, species: str, key: tuple[str, str, str], limits
     return _sheet(info, species, key, layers, limits, climate_title(species, key), _note(info, species, key))
 
 
+@_styled
 def uncertainty_sheet(info: RunInfo, species: str, key: tuple[str, str, str], limits: Limits | None = None) -> Figure | None:
     """Bootstrap bounds and probabilities of one climate, when the run has them (else None)."""
     if not any(info.has(species, key, n) for n in UNCERTAINTY_PANELS):
@@ -607,6 +655,7 @@ def uncertainty_sheet(info: RunInfo, species: str, key: tuple[str, str, str], li
                   climate_title(species, key) + ": fit uncertainty", note)
 
 
+@_styled
 def comparison_sheet(info: RunInfo, species: str, model: str, layer: str, limits: Limits | None = None) -> Figure | None:
     """Scenarios across, periods down, for one climate model (or ``ensemble``); one shared key.
 
@@ -689,6 +738,7 @@ def _climate_label(key: tuple[str, str, str]) -> str:
     return "\n".join(key)
 
 
+@_styled
 def limiting_area_figure(info: RunInfo, species: str) -> Figure | None:
     """Area limited by each factor: the present and every climate (stacked bars, km2)."""
     t = _transitions(info, species)
@@ -734,6 +784,7 @@ def limiting_area_figure(info: RunInfo, species: str) -> Figure | None:
     return fig
 
 
+@_styled
 def switch_matrix_figure(info: RunInfo, species: str) -> Figure | None:
     """Present-to-future limiting-factor transitions, scenarios across and periods down: the area
     (km2, mean over the climate models) of each (now, later) pair written in its cell."""
@@ -800,68 +851,103 @@ def switch_matrix_figure(info: RunInfo, species: str) -> Figure | None:
     return fig
 
 
-# --- any other layer (e.g. community/) -----------------------------------------------------------------------
+# --- community layers (community/..., when the run has them) ---------------------------------------------
 
-def _aux_category_names(path: Path) -> list[str]:
-    aux = path.with_name(path.name + ".aux.xml")
-    if not aux.is_file():
+COMMUNITY_ORDER = ("total_ceiling", "total_change", "richness", "richness_change", "n_release", "n_constraint")
+COMMUNITY_TITLES = {
+    "total_ceiling": "Sum of the species' ceilings",
+    "total_change": "Change of the summed ceiling",
+    "richness": "Potential richness",
+    "richness_change": "Change of potential richness",
+    "n_release": "Species in release",
+    "n_constraint": "Species in constraint",
+}
+
+
+def community_climates(root: str | Path) -> list[Path]:
+    """The folders (relative to the run folder) of community layers: present first."""
+    root = Path(root)
+    base = root / "community"
+    if not base.is_dir():
         return []
-    try:
-        root = ET.parse(aux).getroot()
-    except ET.ParseError:
-        return []
-    return [c.text or "" for c in root.iter("Category")]
+    dirs = sorted({p.parent.relative_to(root) for p in base.rglob("*.tif")}, key=lambda d: (d.parts[1:2] != ("present",), d.parts))
+    return dirs
 
 
-def layer_figure(path: str | Path, title: str) -> Figure:
-    """One map of any single-band GeoTIFF: categorical (its own colour table and category names)
-    when it has a colour table, else continuous (viridis)."""
-    path = Path(path)
+def community_limits(root: str | Path) -> dict[str, float]:
+    """Per layer name, the largest value (or absolute value, for changes) over every climate."""
+    out: dict[str, float] = {}
+    for rel in community_climates(root):
+        for tif in (Path(root) / rel).glob("*.tif"):
+            v = _finite(read_layer(tif))
+            if v.size:
+                top = float(np.abs(v).max()) if "change" in tif.stem else float(v.max())
+                out[tif.stem] = max(out.get(tif.stem, 0.0), top)
+    return out
+
+
+def _community_panel(path: Path, limits: dict[str, float]) -> _Panel:
+    name = path.stem
     with rasterio.open(path) as src:
-        try:
-            has_table = bool(src.colormap(1))
-        except ValueError:
-            has_table = False
-    layer = read_layer(path, categorical=has_table)
-    ratio, aspect = _map_ratio(layer.extent, layer.crs)
-    g = _Grid(1, 1, ratio, panel_w=4.2, side_w=1.8, top=0.75)
-    fig = _new_figure(g.width, g.height)
-    ax = fig.add_axes(g.panel(0, 0))
-    _style_axes(ax, layer, aspect)
-    if has_table:
-        names = _aux_category_names(path)
-        present = sorted(int(v) for v in np.unique(np.ma.compressed(layer.data)))
-        cm = layer.colormap or {}
-        cats = tuple(Category(v, names[v] if v < len(names) and names[v] else f"class {v}",
-                              mcolors.to_hex(np.array(cm.get(v, (128, 128, 128, 255))) / 255.0)) for v in present)
-        ax.imshow(_rgba(layer.data, cats), extent=layer.extent, origin="upper", interpolation="nearest", aspect=aspect)
-        ax.legend(handles=[*_category_handles(cats), _nodata_handle()], fontsize=6, loc="center left",
-                  bbox_to_anchor=(1.03, 0.5), frameon=False)
+        integer = np.dtype(src.dtypes[0]).kind in "iu"
+    layer = read_layer(path, categorical=integer)
+    data = np.ma.masked_invalid(layer.data.astype(np.float64))
+    layer = MapLayer(data, layer.extent, layer.crs, layer.full_shape)
+    top = limits.get(name, 0.0)
+    change = "change" in name
+    if integer and top <= 40:  # counts of species: one colour per whole number
+        n = max(1, int(math.ceil(top)))
+        edges = np.arange(-n - 0.5, n + 1.5) if change else np.arange(-0.5, n + 1.5)
+        cmap = CMAP_CHANGE if change else CMAP_CEILING
+        norm = mcolors.BoundaryNorm(edges, matplotlib.colormaps[cmap].N)
+    elif change:
+        cmap, norm = CMAP_CHANGE, mcolors.Normalize(-_nice_up(top), _nice_up(top))
     else:
-        v = np.ma.compressed(layer.data)
-        lo, hi = (float(v.min()), float(v.max())) if v.size else (0.0, 1.0)
-        cmap = matplotlib.colormaps[CMAP_CEILING].with_extremes(bad=(0, 0, 0, 0))
-        im = ax.imshow(layer.data, cmap=cmap, norm=mcolors.Normalize(lo, hi if hi > lo else lo + 1), extent=layer.extent,
-                       origin="upper", interpolation="nearest", aspect=aspect)
-        x, y, w, h = g.side(0, 0)
-        cb = fig.colorbar(im, cax=fig.add_axes((x, y + 0.15 * h, w * 0.1, 0.7 * h)))
-        cb.ax.tick_params(labelsize=6)
-    _outline(ax, layer)
-    _north_arrow(ax)
-    _titles(fig, g, title)
-    return fig
+        cmap, norm = CMAP_CEILING, mcolors.Normalize(0.0, _nice_up(top))
+    scale = "species" if integer else "abundance summed over species (survey units)"
+    return _Panel(name, layer, None, title=COMMUNITY_TITLES.get(name, name.replace("_", " ")), cmap=cmap, norm=norm,
+                  scale=scale)
+
+
+@_styled
+def community_sheet(root: str | Path, rel: Path, limits: dict[str, float] | None = None) -> Figure | None:
+    """The community layers of one climate folder (``community/present`` or ``community/{scenario}/{model}/{period}``)."""
+    root = Path(root)
+    limits = limits if limits is not None else community_limits(root)
+    tifs = sorted((root / rel).glob("*.tif"), key=lambda p: (COMMUNITY_ORDER.index(p.stem) if p.stem in COMMUNITY_ORDER
+                                                            else len(COMMUNITY_ORDER), p.stem))
+    panels = [_community_panel(t, limits) for t in tifs]
+    parts = rel.parts[1:]
+    if parts[:1] == ("present",):
+        where = "present climate"
+    else:
+        where = ", ".join(f"{k} {v}" for k, v in zip(("scenario", "climate model", "period"), parts))
+    note = ("All species of the run together.\n\nSums and counts of potential upper\nlimits, not forecasts "
+            "of abundance\nor of the species present.\n\nResults need expert review.")
+    return _panel_sheet(panels, Limits(1.0, 1.0, -100.0, 100.0), f"Community: {where}", note)
 
 
 # --- saving and the whole run ------------------------------------------------------------------------------
 
+@_styled
 def save_figure(fig: Figure, path: str | Path) -> Path:
     """Write ``fig`` atomically (format from the suffix: png or svg)."""
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     fmt = path.suffix.lstrip(".").lower() or "png"
-    meta = {"Date": None} if fmt == "svg" else {}
     with atomic_path(path) as tmp:
-        fig.savefig(tmp, format=fmt, dpi=DPI, facecolor="white", metadata=meta)
+        if fmt == "png":
+            # opaque figures: an RGB PNG (a quarter less to compress than matplotlib's RGBA)
+            from PIL import Image, PngImagePlugin
+
+            fig.set_dpi(DPI)
+            fig.canvas.draw()
+            rgb = np.asarray(fig.canvas.buffer_rgba())[..., :3]
+            info = PngImagePlugin.PngInfo()
+            info.add_text("Software", f"ceiling (matplotlib {matplotlib.__version__})")
+            Image.fromarray(np.ascontiguousarray(rgb)).save(tmp, format="PNG", dpi=(DPI, DPI), pnginfo=info)
+        else:
+            fig.savefig(tmp, format=fmt, dpi=DPI, facecolor="white", metadata={"Date": None})
     return path
 
 
@@ -885,44 +971,121 @@ def _formats(formats: Iterable[str]) -> tuple[str, ...]:
     return fs
 
 
-def _write(fig: Figure | None, name_for, run_dir: Path, formats: Sequence[str], out: list[Path]) -> None:
-    if fig is None:
-        return
-    for f in formats:
-        out.append(save_figure(fig, run_dir / name_for(f)))
-    fig.clear()
+@dataclass(frozen=True)
+class _Task:
+    """One figure to make: what it shows, and its path without the format suffix."""
+
+    kind: str
+    species: str
+    args: tuple[Any, ...]
+    stem: str
+
+    def names(self, formats: Sequence[str]) -> list[Path]:
+        return [Path(f"{self.stem}.{f}") for f in formats]
 
 
-def make_figures(run_dir: str | Path, *, formats: Sequence[str] = ("png",)) -> list[Path]:
+def _stem(p: Path) -> str:
+    return p.with_suffix("").as_posix()
+
+
+def figure_tasks(info: RunInfo) -> list[_Task]:
+    """Every figure :func:`make_figures` makes for this run folder, in order."""
+    tasks: list[_Task] = []
+    for sp in info.species:
+        for key in info.climates[sp]:
+            tasks.append(_Task("climate", sp, (key,), _stem(climate_sheet_name(sp, key))))
+        # bootstrap layers, when the run has them: the present bounds on a sheet of their own, and
+        # for the futures the probabilities of release and constraint on comparison sheets
+        present = info.present(sp)
+        if present is not None and any(info.has(sp, present, n) for n in UNCERTAINTY_PANELS):
+            tasks.append(_Task("uncertainty", sp, (present,), _stem(uncertainty_sheet_name(sp, present))))
+        models = list(dict.fromkeys(k[1] for k in info.climates[sp] if k[0] != "present"))
+        for model in models:
+            keys = [k for k in info.climates[sp] if k[0] != "present" and k[1] == model]
+            extra = [n for n in COMPARED_PROBABILITIES if any(info.has(sp, k, n) for k in keys)]
+            # with a single scenario and period the change and zone panels would repeat the map sheet
+            for layer in (("change", "zone") if len(keys) > 1 else ()) + tuple(extra):
+                tasks.append(_Task("compare", sp, (model, layer), _stem(comparison_sheet_name(sp, model, layer))))
+        if models:
+            tasks.append(_Task("areas", sp, (), _stem(limiting_figure_name(sp, "areas"))))
+            tasks.append(_Task("switch", sp, (), _stem(limiting_figure_name(sp, "switch"))))
+    for rel in community_climates(info.root):
+        tasks.append(_Task("community", "", (rel,), _stem(community_figure_name(rel))))
+    return tasks
+
+
+def _build(info: RunInfo, task: _Task, limits: Limits | None) -> Figure | None:
+    sp = task.species
+    if task.kind == "climate":
+        return climate_sheet(info, sp, task.args[0], limits)
+    if task.kind == "uncertainty":
+        return uncertainty_sheet(info, sp, task.args[0], limits)
+    if task.kind == "compare":
+        return comparison_sheet(info, sp, task.args[0], task.args[1], limits)
+    if task.kind == "areas":
+        return limiting_area_figure(info, sp)
+    if task.kind == "switch":
+        return switch_matrix_figure(info, sp)
+    if task.kind == "community":
+        return community_sheet(info.root, task.args[0], limits)
+    raise ValueError(f"unknown figure kind {task.kind!r}")
+
+
+_INFO: dict[str, RunInfo] = {}
+
+
+def _run_tasks(job: tuple[str, list[tuple[_Task, Limits | None]], tuple[str, ...]]) -> list[str]:
+    """Make a batch of figures (in this process or a worker): the paths written."""
+    root, batch, formats = job
+    info = _INFO.get(root)
+    if info is None:
+        info = _INFO[root] = run_info(root)
+    written = []
+    for task, limits in batch:
+        fig = _build(info, task, limits)
+        if fig is None:
+            continue
+        for name in task.names(formats):
+            written.append(str(save_figure(fig, Path(root) / name)))
+        fig.clear()
+    return written
+
+
+def _workers(n_tasks: int, workers: int | None) -> int:
+    if workers is not None:
+        return max(1, int(workers))
+    if "fork" not in multiprocessing.get_all_start_methods():
+        return 1
+    cpus = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
+    return max(1, min(cpus, 4, n_tasks // 8))
+
+
+def make_figures(run_dir: str | Path, *, formats: Sequence[str] = ("png",), missing_only: bool = False,
+                 workers: int | None = None) -> list[Path]:
     """Every map, comparison and limiting-factor figure of a run folder, into ``run_dir/figures/``.
 
     Returns the paths written. Needs ``summary.csv`` and the maps; the bootstrap layers,
-    ``transitions.csv`` and ``community/`` are drawn when present.
+    ``transitions.csv`` and ``community/`` are drawn when present. ``missing_only`` makes only
+    the figures not yet on disk. Figures are independent, so with many of them they are made
+    by a few worker processes (``workers``: default up to 4, by the CPUs available; 1: here).
     """
     root = Path(run_dir)
     fmts = _formats(formats)
     info = run_info(root)
-    out: list[Path] = []
-    with matplotlib.rc_context({"hatch.linewidth": 0.35, "hatch.color": HATCH_COLOUR, "font.size": 7,
-                                "svg.fonttype": "none", "axes.unicode_minus": True}):
-        for sp in info.species:
-            limits = species_limits(info, sp)
-            for key in info.climates[sp]:
-                _write(climate_sheet(info, sp, key, limits), lambda f, k=key: climate_sheet_name(sp, k, f), root, fmts, out)
-                _write(uncertainty_sheet(info, sp, key, limits), lambda f, k=key: uncertainty_sheet_name(sp, k, f),
-                       root, fmts, out)
-            models = list(dict.fromkeys(k[1] for k in info.climates[sp] if k[0] != "present"))
-            for model in models:
-                for layer in ("change", "zone"):
-                    _write(comparison_sheet(info, sp, model, layer, limits),
-                           lambda f, m=model, la=layer: comparison_sheet_name(sp, m, la, f), root, fmts, out)
-            _write(limiting_area_figure(info, sp), lambda f: limiting_figure_name(sp, "areas", f), root, fmts, out)
-            _write(switch_matrix_figure(info, sp), lambda f: limiting_figure_name(sp, "switch", f), root, fmts, out)
-        community = root / "community"
-        if community.is_dir():
-            for tif in sorted(community.rglob("*.tif")):
-                rel = tif.relative_to(root)
-                title = " / ".join(rel.with_suffix("").parts).replace("_", " ")
-                _write(layer_figure(tif, title), lambda f, r=rel: community_figure_name(r, f), root, fmts, out)
-    return out
-
+    tasks = [t for t in figure_tasks(info)
+             if not missing_only or not all((root / n).is_file() for n in t.names(fmts))]
+    limits: dict[str, Any] = {sp: species_limits(info, sp) for sp in dict.fromkeys(t.species for t in tasks if t.species)}
+    if any(t.kind == "community" for t in tasks):
+        limits[""] = community_limits(root)
+    items = [(t, limits.get(t.species)) for t in tasks]
+    n = _workers(len(items), workers)
+    if n <= 1:
+        return [Path(p) for p in _run_tasks((str(root), items, fmts))]
+    batches = [items[i::n * 2] for i in range(n * 2)]  # interleaved: each batch gets a mix of figure kinds
+    with warnings.catch_warnings():
+        warnings.filterwarnings("ignore", message=".*multi-threaded.*fork.*", category=DeprecationWarning)
+        with ProcessPoolExecutor(max_workers=n, mp_context=multiprocessing.get_context("fork")) as pool:
+            done = list(pool.map(_run_tasks, [(str(root), b, fmts) for b in batches if b]))
+    order = {t.stem: i for i, t in enumerate(tasks)}
+    paths = [Path(p) for batch in done for p in batch]
+    return sorted(paths, key=lambda p: (order.get(_stem(p.relative_to(root)), len(order)), p.suffix))

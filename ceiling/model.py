@@ -11,7 +11,7 @@ from __future__ import annotations
 import json
 import math
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
@@ -72,10 +72,22 @@ class CeilingModel:
     bootstrap: Mapping[str, Any] | None = None
     # the reference sample for novelty (MESS): factor name -> sorted values at the survey points
     reference: Mapping[str, np.ndarray] | None = None
+    # factors fitted but left out of the minimum by screening (in_minimum False, with reason);
+    # ``factors`` holds only the factors in the minimum, in config order, and limiting codes
+    # are indices into ``factor_names``
+    screened: tuple[FactorCeiling, ...] = ()
+    # how the curves were chosen: {"method": "per_factor"} or the joint fit's diagnostics
+    fit_info: Mapping[str, Any] | None = None
 
     @property
     def factor_names(self) -> list[str]:
+        """The factors in the minimum (the order of the limiting-factor codes)."""
         return [f.factor for f in self.factors]
+
+    @property
+    def all_factors(self) -> tuple[FactorCeiling, ...]:
+        """Every fitted factor, in the minimum or screened out."""
+        return tuple(self.factors) + tuple(self.screened)
 
     @property
     def n_replicates(self) -> int:
@@ -85,7 +97,7 @@ class CeilingModel:
         return int(next(iter(self.replicates.values())).shape[0])
 
     def __getitem__(self, name: str) -> FactorCeiling:
-        for f in self.factors:
+        for f in self.all_factors:
             if f.factor == name:
                 return f
         raise KeyError(f"no factor {name!r} in the model of {self.species!r}; it has {self.factor_names}")
@@ -119,7 +131,9 @@ class CeilingModel:
 
     def diagnostics_table(self) -> pd.DataFrame:
         rows = []
-        for f in self.factors:
+        info = dict(self.fit_info or {})
+        shares = info.get("limiting_share", {})
+        for f in self.all_factors:
             d = f.diagnostics
             row: dict[str, Any] = {
                 "species": self.species,
@@ -144,6 +158,10 @@ class CeilingModel:
                 "wedge_df": d.wedge_df,
                 "wedge_p": d.wedge_p,
                 "verdict": d.verdict,
+                "in_minimum": bool(f.in_minimum),
+                "screened_reason": f.screened_reason,
+                "method": info.get("method", "per_factor"),
+                "limiting_share": shares.get(f.factor, np.nan),
             }
             for i, b in enumerate(f.params):
                 row[f"b{i}"] = b
@@ -168,7 +186,18 @@ class CeilingModel:
             how = (f"spatial blocks of {meta['block']:g} map units" if meta.get("block")
                    else "survey points")
             head += f"; {self.n_replicates} bootstrap replicates (resampling {how}, seed {meta.get('seed', 0)})"
-        return "\n".join([head] + [f.summary() for f in self.factors])
+        info = dict(self.fit_info or {})
+        if info.get("method") == "joint":
+            share = ", ".join(f"{k} {v:.2f}" for k, v in info.get("limiting_share", {}).items())
+            head += (
+                f"\njoint law-of-the-minimum fit: mean check loss {info['objective_start']:.4g} -> "
+                f"{info['objective_end']:.4g} ({info['iterations']} iterations, {info['starts']} starts); "
+                f"share of points above the combined ceiling {info['share_above']:.3f} (expected about "
+                f"{1 - self.tau:.3f}); share of points each factor limits: {share}"
+            )
+        for f in self.screened:
+            head += f"\n{f.factor} left out of the minimum: {f.screened_reason}"
+        return "\n".join([head] + [f.summary() for f in self.all_factors])
 
     def to_dict(self) -> dict[str, Any]:
         out = {
@@ -177,8 +206,10 @@ class CeilingModel:
             "outside": self.outside,
             "n_points": self.n_points,
             "dropped": dict(self.dropped),
-            "factors": [f.to_dict() for f in self.factors],
+            "factors": [f.to_dict() for f in self.all_factors],
         }
+        if self.fit_info:
+            out["fit"] = _plain(self.fit_info)
         if self.reference:
             out["reference"] = {k: [float(v) for v in np.asarray(a)] for k, a in self.reference.items()}
         if self.n_replicates:
@@ -240,6 +271,82 @@ class ModelSet:
         return atomic_write_text(Path(path), self.to_json())
 
 
+def _plain(d: Any) -> Any:
+    """JSON-ready copy of a small diagnostics mapping (NaN becomes null)."""
+    if isinstance(d, Mapping):
+        return {str(k): _plain(v) for k, v in d.items()}
+    if isinstance(d, list | tuple):
+        return [_plain(v) for v in d]
+    if isinstance(d, float | np.floating):
+        return float(d) if math.isfinite(d) else None
+    if isinstance(d, np.integer):
+        return int(d)
+    return d
+
+
+def screen_factors(
+    fitted: Sequence[FactorCeiling],
+    values: Any,
+    *,
+    screen: bool = True,
+    keep: Sequence[str] = (),
+    drop: Sequence[str] = (),
+    duplicate_threshold: float = 0.9,
+    wedge_alpha: float = 0.05,
+) -> dict[str, str]:
+    """Which fitted factors to leave out of the minimum, with the reason for each.
+
+    With ``screen``: a factor whose wedge test does not reject equal slopes at tau and at the
+    median (p >= ``wedge_alpha``) has no distinct upper edge and is left out; of two factors
+    whose values at the survey points have an absolute Spearman rank correlation above
+    ``duplicate_threshold`` only the one with the clearer edge (lower wedge p-value) is kept.
+    Factors in ``keep`` always stay in, those in ``drop`` always go; at least one factor stays.
+    Returns factor name -> reason, for the factors left out.
+    """
+    from scipy.stats import spearmanr
+
+    keep, drop = set(keep), set(drop)
+    out: dict[str, str] = {}
+    p = {f.factor: (f.diagnostics.wedge_p if np.isfinite(f.diagnostics.wedge_p) else 0.0) for f in fitted}
+    for f in fitted:
+        if f.factor in drop:
+            out[f.factor] = "left out by fit.drop"
+    if screen:
+        for f in fitted:
+            wp = f.diagnostics.wedge_p
+            if f.factor not in out and f.factor not in keep and np.isfinite(wp) and wp >= wedge_alpha:
+                out[f.factor] = f"no distinct upper edge (wedge test p={wp:.3g} >= {wedge_alpha:g})"
+        names = [f.factor for f in fitted]
+        cols = {n: np.asarray(values[n], dtype=np.float64) for n in names}
+        # strongest pairs first, so a chain of duplicates keeps its clearest member
+        pairs = []
+        for a_i, a in enumerate(names):
+            for b in names[a_i + 1:]:
+                ok = np.isfinite(cols[a]) & np.isfinite(cols[b])
+                if ok.sum() < 3:
+                    continue
+                r = float(spearmanr(cols[a][ok], cols[b][ok]).statistic)
+                if np.isfinite(r) and abs(r) > duplicate_threshold:
+                    pairs.append((abs(r), a, b))
+        for r, a, b in sorted(pairs, reverse=True):
+            if a in out or b in out:
+                continue
+            if a in keep and b in keep:
+                continue
+            if a in keep or (b not in keep and p[a] <= p[b]):
+                win, lose = a, b
+            else:
+                win, lose = b, a
+            why = "fit.keep" if win in keep else f"its edge is clearer (wedge p {p[win]:.3g} vs {p[lose]:.3g})"
+            out[lose] = (f"near-duplicate of {win} (|Spearman| {r:.3f} > {duplicate_threshold:g} at the "
+                         f"survey points); {win} is kept: {why}")
+    if len(out) >= len(fitted):
+        # never an empty minimum: keep the factor with the clearest edge
+        best = min((f for f in fitted if f.factor not in drop), key=lambda f: p[f.factor], default=fitted[0])
+        out.pop(best.factor, None)
+    return out
+
+
 def fit(
     samples: Any,
     factors: Sequence[Any] | None = None,
@@ -250,6 +357,12 @@ def fit(
     wedge_replicates: int = 50,
     wedge_alpha: float = 0.05,
     seed: int = 0,
+    screen: bool = False,
+    keep: Sequence[str] = (),
+    drop: Sequence[str] = (),
+    duplicate_threshold: float = 0.9,
+    method: str = "per_factor",
+    joint_starts: int = 3,
 ) -> CeilingModel:
     """Fit one species' multi-factor ceiling.
 
@@ -257,9 +370,17 @@ def fit(
     ``values`` (a table of factor columns) and ``species``). ``factors`` lists factor names or
     :class:`FactorSpec` (per-factor basis and estimator); by default every column of
     ``samples.values`` with a quadratic basis.
+
+    Every factor is first fitted on its own (:func:`ceiling.boundary.fit_factor`). With
+    ``screen`` (or ``keep`` / ``drop``) :func:`screen_factors` then leaves some out of the
+    minimum (they stay in the model as ``screened``, with the reason). With
+    ``method="joint"`` the curves of the factors in the minimum are then chosen together
+    (:func:`ceiling.joint.joint_fit`); binned-maxima curves stay as fitted.
     """
     if transform not in ("none", "log1p", "sqrt"):
         raise FitError(f"The 'transform' parameter must be none, log1p or sqrt; got {transform!r}")
+    if method not in ("per_factor", "joint"):
+        raise FitError(f"The 'method' parameter must be 'per_factor' or 'joint'; got {method!r}")
     values = samples.values
     specs = [FactorSpec.coerce(f) for f in (factors if factors is not None else list(values.columns))]
     y = np.asarray(samples.abundance, dtype=np.float64)
@@ -277,15 +398,33 @@ def fit(
         except FitError as exc:  # name the species: a run fits several
             raise FitError(f"species '{getattr(samples, 'species', 'species')}': {exc}") from None
         fitted.append(fc)
+    out = screen_factors(fitted, values, screen=screen, keep=keep, drop=drop,
+                         duplicate_threshold=duplicate_threshold, wedge_alpha=wedge_alpha)
+    kept = [f for f in fitted if f.factor not in out]
+    screened = [replace(f, in_minimum=False, screened_reason=out[f.factor]) for f in fitted if f.factor in out]
+    info: dict[str, Any] = {"method": "per_factor"}
+    if method == "joint":
+        from .joint import joint_fit
+
+        jf = joint_fit(kept, values, y, tau=tau, transform=transform, starts=joint_starts, seed=seed,
+                       fixed=[f.factor for f in kept if f.estimator == "binned"])
+        # the standard errors are the per-factor QuantReg ones; the intervals keep their
+        # width and are recentred on the joint estimate (an approximation: the joint fit has
+        # no sandwich estimate of its own; the bootstrap gives proper bounds)
+        kept = [replace(f, params=jf.params[f.factor],
+                        conf_int=f.conf_int + (jf.params[f.factor] - f.params)[:, None]) for f in kept]
+        info = jf.to_dict()
     return CeilingModel(
         species=str(getattr(samples, "species", "species")),
-        factors=tuple(fitted),
+        factors=tuple(kept),
         tau=float(tau),
         transform=transform,
         outside=outside,
         n_points=int(y.size),
         dropped=dict(getattr(samples, "dropped", {}) or {}),
-        reference={s.name: _sorted_finite(values[s.name]) for s in specs},
+        reference={f.factor: _sorted_finite(values[f.factor]) for f in kept},
+        screened=tuple(screened),
+        fit_info=info,
     )
 
 
@@ -414,12 +553,20 @@ def _parse(data: Any, where: str) -> ModelSet:
         names = [f.factor for f in factors]
         if len(set(names)) != len(names):
             raise ModelFileError(f"{w}: factor names repeat ({names}); each factor must appear once")
+        screened = [f for f in factors if not f.in_minimum]
+        factors = [f for f in factors if f.in_minimum]
+        if not factors:
+            raise ModelFileError(f"{w}: no factor is in the minimum (every 'in_minimum' is false); re-create the model file with 'ceiling fit'")
+        fit_info = m.get("fit")
+        if fit_info is not None and not isinstance(fit_info, Mapping):
+            raise ModelFileError(f"{w}: 'fit' must be a table of fit diagnostics; re-create the model file with 'ceiling fit'")
         replicates, boot = _parse_bootstrap(m.get("bootstrap"), factors, w)
         models[str(name)] = CeilingModel(
             species=str(name), factors=tuple(factors), tau=float(tau), transform=transform,
             outside=outside, n_points=int(m.get("n_points", 0)), dropped=dict(m.get("dropped", {})),
             replicates=replicates, bootstrap=boot,
             reference=_parse_reference(m.get("reference"), [f.factor for f in factors], w),
+            screened=tuple(screened), fit_info=dict(fit_info) if fit_info is not None else None,
         )
     return ModelSet(models, dict(data.get("provenance", {})))
 

@@ -237,6 +237,12 @@ def _write_climate(
     statistics reduced before the next group starts, so memory is bounded by the group, not by
     the grid. Within a group, every chunk of every input is read once for all outputs.
     """
+    record = stage / done_record_name(climate.key)
+    reused = _reuse_climate(record, stage, len(stats))
+    if reused is not None:
+        if say is not None:
+            say(f"      {climate.label}: reused {len(reused[0])} complete files (--resume)")
+        return reused
     sources, targets, finals = [], [], []
     for i, m in enumerate(models):
         for name in layers:
@@ -275,7 +281,82 @@ def _write_climate(
     written = []
     for tmp, final, cats, long_name in finals:
         written += finalize_cog(tmp, final, categorical=cats is not None, categories=cats, description=long_name)
+    _write_done_record(record, stage, written, vectors)
     return written, vectors
+
+
+# --- resume records: one per climate, written once its files are final ------------------------
+
+def done_record_name(key: tuple[str, str, str]) -> str:
+    from .outputs.folder import DONE_PREFIX
+    from .outputs.names import safe_part
+
+    return DONE_PREFIX + "__".join(safe_part(k) for k in key) + ".json"
+
+
+def _write_done_record(record: Path, stage: Path, written: list[Path], vectors: list[np.ndarray]) -> None:
+    """List a climate's finished files (with sha256) and its summary vectors, for ``--resume``."""
+    import json
+
+    from .outputs.atomic import sha256_file
+
+    doc = {"files": {str(p.relative_to(stage)): sha256_file(p) for p in written},
+           "vectors": [np.asarray(v, dtype=np.float64).tolist() for v in vectors]}
+    atomic_write_text(record, json.dumps(doc))
+
+
+def _reuse_climate(record: Path, stage: Path, n_vectors: int) -> tuple[list[Path], list[np.ndarray]] | None:
+    """The files and summary vectors of a climate completed by an interrupted run, or None when
+    there is no record or any listed file is missing or differs from its checksum."""
+    import json
+
+    from .outputs.atomic import sha256_file
+
+    if not record.is_file():
+        return None
+    try:
+        doc = json.loads(record.read_text(encoding="utf-8"))
+        files = [(stage / rel, sha) for rel, sha in doc["files"].items()]
+        vectors = [np.asarray(v, dtype=np.float64) for v in doc["vectors"]]
+    except (ValueError, KeyError, TypeError, AttributeError):
+        return None
+    if len(vectors) != n_vectors or not all(p.is_file() and sha256_file(p) == sha for p, sha in files):
+        record.unlink(missing_ok=True)
+        return None
+    return [p for p, _ in files], vectors
+
+
+def output_bytes(grid: GridSpec, n_species: int, climates_: Sequence[Climate], *, bootstrap: bool) -> int:
+    """Upper bound of a projection's output size: every map uncompressed, twice (GeoTIFF + NetCDF)."""
+    def per_cell(names) -> int:
+        return sum(np.dtype(LAYER_META[n][0]).itemsize for n in names)
+
+    futures = [c for c in climates_ if not c.is_present]
+    ensembles = len({(c.scenario, c.period) for c in futures})
+    present = per_cell(PRESENT_LAYERS + (PRESENT_BOUNDS if bootstrap else ()))
+    future = per_cell(FUTURE_LAYERS + (FUTURE_BOUNDS if bootstrap else ()))
+    return int(2 * grid.width * grid.height * n_species * (present + future * len(futures) + per_cell(ENSEMBLE_LAYERS) * ensembles))
+
+
+def run_fingerprint(cfg: RunConfig, inputs: Sequence[Path], model_path: Path | None) -> str:
+    """What an interrupted run must share with its resumption: config text, model file and the
+    inputs (path, size, modification time)."""
+    import hashlib
+    import json
+
+    from . import __version__
+
+    def stat(p: Path):
+        try:
+            st = Path(p).stat()
+            return [str(Path(p).resolve()), st.st_size, st.st_mtime_ns]
+        except OSError:
+            return [str(p), None, None]
+
+    src = Path(cfg.source) if cfg.source else None
+    doc = {"version": __version__, "config": src.read_text(encoding="utf-8") if src and src.is_file() else cfg.model_dump_json(),
+           "model": stat(model_path) if model_path else None, "inputs": sorted(stat(p) for p in inputs)}
+    return hashlib.sha256(json.dumps(doc, sort_keys=True).encode()).hexdigest()
 
 
 def run_projection(
@@ -308,6 +389,9 @@ def run_projection(
     trans: list[dict] = []
     # open every climate's layers first, so that a bad layer is refused before any computing
     opened = [open_climate(c, grid, used, units, opts) for c in cl]
+    from .outputs.folder import check_free_space
+
+    check_free_space(stage, output_bytes(grid, len(ms), cl, bootstrap=has_replicates(ms)), what="the projection's maps")
     with compute_context(workers=workers, address=address, threads=threads) as comp:
         t0 = time.perf_counter()
         pres_ds = project(ms, opened[0], mask=mask, novel=opts.novel)
@@ -394,21 +478,46 @@ def _mask(opts: ProjectionOptions, grid: GridSpec, cfg: RunConfig) -> xr.DataArr
 def _netcdf(stage: Path, grid: GridSpec, ms: list[CeilingModel], cl: list[Climate], area: da.Array,
             opts: ProjectionOptions, cfg: RunConfig) -> Path:
     """Assemble the run's NetCDF from the maps just written (lazy, chunk by chunk)."""
+    # Each species' GeoTIFF codes index that model's own factor list (m.factor_names, the
+    # factors in its minimum). When factor screening leaves species with different lists, the
+    # NetCDF's codes index the config's factor list instead, remapped here; with one shared
+    # list the two are the same list and the codes pass through unchanged.
     factors = ms[0].factor_names
+    luts: list[np.ndarray | None] = [None] * len(ms)
+    switch_luts: list[np.ndarray | None] = [None] * len(ms)
     if any(m.factor_names != factors for m in ms):
-        raise DataError("species use different factor lists; the NetCDF needs one set of limiting-factor codes")
+        factors = [f for f in cfg.factor_names if any(f in m.factor_names for m in ms)]
+        big = len(factors)
+        for i, m in enumerate(ms):
+            where = [factors.index(f) for f in m.factor_names]
+            lut = np.full(256, NODATA_CODE, dtype=np.uint8)
+            lut[: len(where)] = where
+            sw = np.full(256, NODATA_CODE, dtype=np.uint8)
+            k = len(where)
+            for a, ga in enumerate(where):
+                for b, gb in enumerate(where):
+                    sw[a * k + b] = ga * big + gb
+            luts[i], switch_luts[i] = lut, sw
+
+    def _recode(arr: da.Array, name: str, i: int) -> da.Array:
+        table = switch_luts[i] if name == "switch" else luts[i] if name in ("limiting", "novel_factor") else None
+        if table is None:
+            return arr
+        return arr.map_blocks(lambda b, t=table: t[b], dtype=np.uint8)
+
     layers: dict[str, Any] = {}
     boot = has_replicates(ms)
     for name in PRESENT_LAYERS + (PRESENT_BOUNDS if boot else ()):
         dtype, long_name, units = LAYER_META[name]
-        arrs = [_read_back(stage / layer_path(m.species, cl[0].key, name), grid, opts.chunk, code=dtype == "uint8") for m in ms]
+        arrs = [_recode(_read_back(stage / layer_path(m.species, cl[0].key, name), grid, opts.chunk, code=dtype == "uint8"), name, i)
+                for i, m in enumerate(ms)]
         layers[f"{name}_present"] = (da.stack(arrs), f"{long_name}, present", units, layer_categories(name, factors))
     futures = cl[1:]
     if futures:
         for name in FUTURE_LAYERS + (FUTURE_BOUNDS if boot else ()):
             dtype, long_name, units = LAYER_META[name]
-            arrs = [da.stack([_read_back(stage / layer_path(m.species, c.key, name), grid, opts.chunk, code=dtype == "uint8")
-                              for c in futures]) for m in ms]
+            arrs = [da.stack([_recode(_read_back(stage / layer_path(m.species, c.key, name), grid, opts.chunk, code=dtype == "uint8"), name, i)
+                              for c in futures]) for i, m in enumerate(ms)]
             layers[name] = (da.stack(arrs), long_name, units, layer_categories(name, factors))
     return write_netcdf(
         stage / NETCDF_FILE, grid=grid, species=[m.species for m in ms], futures=[c.key for c in futures],
@@ -428,7 +537,9 @@ class RunResult:
 
     def summary(self) -> str:
         head = f"projected {len(self.projection.climates)} climates on a {self.projection.grid.height} x {self.projection.grid.width} grid with {self.projection.compute} in {self.seconds:.1f} s"
-        return head + "\n" + self.projection.summary_text() + f"\n\noutputs in {self.out}"
+        n_warn = len(self.fit.warnings if self.fit is not None else []) + len(self.projection.warnings)
+        tail = f"\n\nwarnings: {n_warn} (listed in manifest.json)" if n_warn else ""
+        return head + "\n" + self.projection.summary_text() + tail + f"\n\noutputs in {self.out}"
 
 
 def _all_layer_paths(cl: list[Climate]) -> list[Path]:
@@ -438,9 +549,13 @@ def _all_layer_paths(cl: list[Climate]) -> list[Path]:
 def project_to_folder(
     cfg: RunConfig, out: Path, *, model_path: Path | None = None, overwrite: bool = False,
     workers: int | None = None, address: str | None = None, threads: int | None = None,
-    progress: Callable[[str], None] | None = None,
+    progress: Callable[[str], None] | None = None, resume: bool = False,
 ) -> RunResult:
-    """Fit (unless ``model_path`` is given) and project, into a folder that appears complete."""
+    """Fit (unless ``model_path`` is given) and project, into a folder that appears complete.
+
+    With ``resume``, the staging folder of an interrupted run on the same config and inputs is
+    kept, and every climate whose completion record matches the files on disk is reused.
+    """
     from .fitting import config_inputs, fit_config, write_fit
     from .model import load_models
     from .outputs.folder import check_output_folder, staged_folder
@@ -451,6 +566,11 @@ def project_to_folder(
     cl = climates(cfg)
     projection_options(cfg)
     inputs = config_inputs(cfg) + _all_layer_paths(cl) + ([Path(model_path)] if model_path else [])
+    # regions and community layers ([outputs.zones], [outputs.community]): a bad table or zones file is refused now
+    from .community import build_community, community_options
+    from .zones import load_zones_config, summarize_zones
+    zones_in, community_opts = load_zones_config(cfg), community_options(cfg)
+    inputs += [zones_in.source] if zones_in is not None else []
     check_output_folder(out, overwrite=overwrite, inputs=inputs)
     fit_run = None
     if model_path is not None:
@@ -461,15 +581,31 @@ def project_to_folder(
         if progress:
             progress(f"fitted {len(models)} species: " + ", ".join(
                 f"{m.species} ({sum(f.is_limiting for f in m.factors)}/{len(m.factors)} factors act as limits)" for m in models))
-    with staged_folder(out, overwrite=overwrite) as stage:
+    with staged_folder(out, overwrite=overwrite, resume=resume, fingerprint=run_fingerprint(cfg, inputs, model_path)) as stage:
         if fit_run is not None:
             write_fit(fit_run, stage)
         else:
             models.save(stage / MODEL_FILE)
         run = run_projection(cfg, models, stage, workers=workers, address=address, threads=threads, progress=progress)
+        if zones_in is not None:  # zones.csv, zones.gpkg (ceiling/zones.py)
+            run.timings["zones"] = summarize_zones(stage, zones_in, update_manifest=False, progress=progress).seconds
+        if community_opts is not None:  # community/, community.csv (ceiling/community.py)
+            run.timings["community"] = build_community(
+                stage, species=[m.species for m in models], climates=[c.key for c in run.climates],
+                richness_threshold=community_opts.richness_threshold, chunk=projection_options(cfg).chunk,
+                threads=threads, progress=progress).seconds
+        # figures and report.html (ceiling/maps.py, ceiling/report/), before the manifest that lists them
+        from .maps import make_figures
+        from .report import build_report
+        t_report = time.perf_counter()
+        n_figures = len(make_figures(stage))
+        build_report(stage, config=cfg.source, inputs=inputs)
+        run.timings["figures_and_report"] = time.perf_counter() - t_report
+        if progress:
+            progress(f"wrote {n_figures} figures and report.html in {run.timings['figures_and_report']:.1f} s")
         seconds = time.perf_counter() - t_start
         outputs = [p for p in stage.rglob("*") if p.is_file()]
-        warnings_list = list(fit_run.warnings) if fit_run is not None else []
+        warnings_list = (list(fit_run.warnings) if fit_run is not None else []) + list(run.warnings)  # fit + projection notes
         write_manifest(
             stage / MANIFEST_FILE, root=stage, config=cfg.source, inputs=inputs, outputs=outputs,
             extra={

@@ -204,6 +204,7 @@ def sample_layer(
     """Values of a raster at points; returns (values, inside-grid mask, layer units)."""
     path = Path(path)
     da = _open_layer(path)
+    _check_declared_nodata(path, da)
     lcrs = da.rio.crs
     if lcrs is None:
         raise DataError(f"{path}: the layer has no CRS; assign one (e.g. with gdal_edit.py -a_srs) before use")
@@ -242,6 +243,29 @@ def sample_layer(
         nearest = np.where(np.isfinite(v), v, nearest)
     vals[inside] = nearest
     return vals, inside, layer_units(da)
+
+
+def _check_declared_nodata(path: Path, da: Any) -> None:
+    """Refuse a layer without declared nodata whose decimated sample holds a nodata marker
+    (-9999, -3.4e38, ...): sampled there, the marker would be read as a factor value."""
+    if da.rio.nodata is not None or da.rio.encoded_nodata is not None:
+        return
+    import rasterio
+
+    from .grids import sentinel_in_sample
+
+    try:
+        with rasterio.Env(GDAL_PAM_ENABLED="NO"), rasterio.open(path) as src:
+            if src.nodata is not None:
+                return
+            bad = sentinel_in_sample(src)
+    except rasterio.errors.RasterioIOError:
+        return
+    if bad is not None:
+        raise DataError(
+            f"{path}: the layer declares no nodata value but holds {bad:g}, a usual nodata marker; declare nodata "
+            f"(e.g. gdal_edit.py -a_nodata {bad:g} {path.name}) so those cells are not read as values"
+        )
 
 
 def layer_units(da: Any) -> str | None:

@@ -53,6 +53,10 @@ class FactorCeiling:
     diagnostics: FactorDiagnostics
     units: str | None = None
     label: str | None = None
+    # factor screening (ceiling.model.screen_factors): whether the factor takes part in the
+    # minimum, and why not when it does not
+    in_minimum: bool = True
+    screened_reason: str = ""
 
     def _x(self, x: np.ndarray) -> np.ndarray:
         x = np.asarray(x, dtype=np.float64)
@@ -88,6 +92,8 @@ class FactorCeiling:
             f"check loss {d.pinball_loss:.4g}; pseudo-R1 {d.pseudo_r1:.3f}",
             f"  wedge test p={d.wedge_p:.3g}: {d.verdict}",
         ]
+        if not self.in_minimum:
+            lines.append(f"  left out of the minimum: {self.screened_reason}")
         for i, (b, s) in enumerate(zip(self.params, self.bse)):
             lo, hi = self.conf_int[i]
             lines.append(f"    b{i} = {b: .5g}  (se {s:.3g}; 95% CI {lo:.4g} to {hi:.4g})")
@@ -109,6 +115,8 @@ class FactorCeiling:
             "median_coefficients": arr(self.median_params),
             "observed_range": [float(self.observed[0]), float(self.observed[1])],
             "diagnostics": self.diagnostics.to_dict(),
+            "in_minimum": bool(self.in_minimum),
+            "screened_reason": self.screened_reason,
         }
 
     @classmethod
@@ -148,6 +156,8 @@ class FactorCeiling:
             diagnostics=FactorDiagnostics.from_dict(d["diagnostics"]),
             units=d.get("units"),
             label=d.get("label"),
+            in_minimum=bool(d.get("in_minimum", True)),
+            screened_reason=str(d.get("screened_reason", "") or ""),
         )
 
 

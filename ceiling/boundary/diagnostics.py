@@ -74,8 +74,17 @@ def wedge_test(
     replicates: int,
     seed: int,
     params_tau: np.ndarray | None = None,
+    solver: str = "smoothed",
 ) -> tuple[float, int, float]:
-    """Wald test of equal slopes at ``tau`` and at 0.5; returns (statistic, df, p-value)."""
+    """Wald test of equal slopes at ``tau`` and at 0.5; returns (statistic, df, p-value).
+
+    The covariance of the slope differences comes from a seeded pairs bootstrap. With
+    ``solver="smoothed"`` (default) every replicate is refitted at once by the smoothed
+    quantile solver (:func:`ceiling.uncertainty.smoothed_quantile_fit`, case weights = resample
+    counts), the replicate being the exact full-sample fit plus the smoothed fit's shift, as
+    the model bootstrap does; a replicate whose smoothed fit does not converge is refitted
+    exactly. ``solver="exact"`` refits every replicate with statsmodels' QuantReg.
+    """
     p = X.shape[1]
     dfree = p - 1
     if replicates < 2 or dfree < 1:
@@ -83,17 +92,46 @@ def wedge_test(
     b_tau = params_tau if params_tau is not None else quantile_fit(y, X, tau, with_errors=False).params
     b_med = quantile_fit(y, X, 0.5, with_errors=False).params
     diff = (b_tau - b_med)[1:]
-    rng = np.random.default_rng(seed)
     n = y.size
-    reps = np.empty((replicates, dfree))
-    quick = {"with_errors": False, "max_iter": REPLICATE_MAX_ITER, "p_tol": REPLICATE_P_TOL, "warn": False}
-    for b in range(replicates):
-        idx = rng.integers(0, n, n)
-        yb, Xb = y[idx], X[idx]
-        reps[b] = (quantile_fit(yb, Xb, tau, **quick).params - quantile_fit(yb, Xb, 0.5, **quick).params)[1:]
+    if solver == "exact":
+        rng = np.random.default_rng(seed)
+        reps = np.empty((replicates, dfree))
+        quick = {"with_errors": False, "max_iter": REPLICATE_MAX_ITER, "p_tol": REPLICATE_P_TOL, "warn": False}
+        for b in range(replicates):
+            idx = rng.integers(0, n, n)
+            yb, Xb = y[idx], X[idx]
+            reps[b] = (quantile_fit(yb, Xb, tau, **quick).params - quantile_fit(yb, Xb, 0.5, **quick).params)[1:]
+    else:
+        reps = _smoothed_replicates(y, X, tau, b_tau, b_med, replicates, seed)
     cov = np.atleast_2d(np.cov(reps, rowvar=False))
     stat = float(diff @ np.linalg.pinv(cov) @ diff)
     return stat, dfree, float(stats.chi2.sf(stat, dfree))
+
+
+def _smoothed_replicates(y: np.ndarray, X: np.ndarray, tau: float, b_tau: np.ndarray,
+                         b_med: np.ndarray, replicates: int, seed: int) -> np.ndarray:
+    from ..uncertainty import (
+        bootstrap_counts,
+        counts_to_indices,
+        residual_band,
+        smoothed_quantile_fit,
+        smoothing_bandwidth,
+    )
+
+    n, p = X.shape
+    counts = bootstrap_counts(n, replicates, seed=seed).astype(np.float64)
+    out = []
+    for q, b_full in ((tau, b_tau), (0.5, b_med)):
+        h = smoothing_bandwidth(n, p, residual_band(y - X @ b_full, q))
+        first = smoothed_quantile_fit(y, X, q, h=h, start=b_full)
+        full = first.params[0]
+        rep = smoothed_quantile_fit(y, X, q, h=h, start=full, weights=counts)
+        coef = b_full + (rep.params - full)
+        for j in np.flatnonzero(~rep.converged):
+            idx = counts_to_indices(counts[j].astype(np.int64))
+            coef[j] = quantile_fit(y[idx], X[idx], q, with_errors=False, warn=False).params
+        out.append(coef)
+    return (out[0] - out[1])[:, 1:]
 
 
 def shape_summary(

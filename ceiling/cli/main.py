@@ -40,6 +40,7 @@ def _register() -> None:
     cli.add_command(demo_cmd.demo)
     from .summarize import summarize as summarize_cmd  # regions: zones.csv / zones.gpkg
     cli.add_command(summarize_cmd)
+    from .report import report as report_cmd; cli.add_command(report_cmd)  # noqa: E702, I001  figures + report.html
 
 
 _register()

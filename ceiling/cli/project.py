@@ -23,16 +23,21 @@ def _with_compute(fn):
     return fn
 
 
+resume_opt = click.option(
+    "--resume", is_flag=True,
+    help="Continue an interrupted run into the same --out: climates whose files match their checksums are reused, the rest recomputed.")
+
+
 def _run(ctx: click.Context, config: Path, out: Path, model: Path | None, overwrite: bool, workers, address, threads,
-         bootstrap: int | None = None) -> None:
+         bootstrap: int | None = None, resume: bool = False) -> None:
     cfg = with_bootstrap(load_config(config), bootstrap)
     quiet = ctx.obj.get("quiet")
     res = project_to_folder(
         cfg, out, model_path=model, overwrite=overwrite, workers=workers, address=address, threads=threads,
-        progress=None if quiet else (lambda s: click.echo(s, err=True)),
+        progress=None if quiet else (lambda s: click.echo(s, err=True)), resume=resume,
     )
     if not quiet:
-        for w in (res.fit.warnings if res.fit is not None else []):
+        for w in (res.fit.warnings if res.fit is not None else []) + list(res.projection.warnings):
             click.echo(f"warning: {w}", err=True)
         click.echo(res.summary())
 
@@ -42,12 +47,13 @@ def _run(ctx: click.Context, config: Path, out: Path, model: Path | None, overwr
 @click.option("--model", "model", required=True, type=click.Path(path_type=Path, dir_okay=False), help="Model file written by 'ceiling fit'.")
 @out_opt
 @overwrite_opt
+@resume_opt
 @_with_compute
 @click.pass_context
 @handle_errors
-def project(ctx, config, model, out, overwrite, workers, address, threads) -> None:
+def project(ctx, config, model, out, overwrite, resume, workers, address, threads) -> None:
     """Project a fitted model onto the present and every future of CONFIG."""
-    _run(ctx, config, out, model, overwrite, workers, address, threads)
+    _run(ctx, config, out, model, overwrite, workers, address, threads, resume=resume)
 
 
 @click.command("run")
@@ -56,9 +62,10 @@ def project(ctx, config, model, out, overwrite, workers, address, threads) -> No
 @click.option("--model", "model", default=None, type=click.Path(path_type=Path, dir_okay=False), help="Reuse this model file instead of fitting.")
 @overwrite_opt
 @bootstrap_opt
+@resume_opt
 @_with_compute
 @click.pass_context
 @handle_errors
-def run(ctx, config, out, model, overwrite, bootstrap, workers, address, threads) -> None:
+def run(ctx, config, out, model, overwrite, bootstrap, resume, workers, address, threads) -> None:
     """Fit (or reuse a model file) and project: the whole job on CONFIG."""
-    _run(ctx, config, out, model, overwrite, workers, address, threads, bootstrap)
+    _run(ctx, config, out, model, overwrite, workers, address, threads, bootstrap, resume=resume)

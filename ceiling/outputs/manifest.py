@@ -39,6 +39,11 @@ def file_entry(path: Path, root: Path | None = None) -> dict[str, Any]:
     return {"path": shown, "size": p.stat().st_size, "sha256": sha256_file(p)}
 
 
+def _hidden(p: Path, root: Path) -> bool:
+    parts = p.relative_to(root).parts if p.is_relative_to(root) else (p.name,)
+    return any(part.startswith(".") for part in parts)
+
+
 def write_manifest(
     path: Path, *, root: Path, config: Path | None, inputs: Iterable[Path], outputs: Iterable[Path],
     extra: Mapping[str, Any],
@@ -50,7 +55,9 @@ def write_manifest(
         if key not in seen and Path(p).is_file():
             seen.add(key)
             ins.append(file_entry(Path(p)))
-    outs = sorted((file_entry(Path(p), root) for p in outputs if Path(p).is_file()), key=lambda e: e["path"])
+    # hidden entries (staging lock, resume records, temporary files) are not outputs
+    outs = sorted((file_entry(Path(p), root) for p in outputs if Path(p).is_file() and not _hidden(Path(p), root)),
+                  key=lambda e: e["path"])
     doc = {
         "kind": MANIFEST_KIND,
         "schema_version": 1,

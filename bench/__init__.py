@@ -1,0 +1,1 @@
+"""Benchmarks of ceiling (``python -m bench``); see BENCHMARKS.md."""
