@@ -50,7 +50,8 @@ def _all_tifs(root: Path) -> list[Path]:
 
 
 def test_every_map_has_the_template_grid(demo, template):
-    tifs = _all_tifs(demo)
+    everything = _all_tifs(demo)  # the community maps too: every map keeps the template grid
+    tifs = [p for p in everything if p.relative_to(demo).parts[0] in SPECIES]
     from ceiling.outputs.names import ENSEMBLE_LAYERS, FUTURE_LAYERS, PRESENT_LAYERS
     from ceiling.projection import FUTURE_BOUNDS, PRESENT_BOUNDS
 
@@ -59,14 +60,16 @@ def test_every_map_has_the_template_grid(demo, template):
     per_species = (len(PRESENT_LAYERS) + len(PRESENT_BOUNDS) + 12 * (len(FUTURE_LAYERS) + len(FUTURE_BOUNDS))
                    + 4 * len(ENSEMBLE_LAYERS))
     assert len(tifs) == len(SPECIES) * per_species
-    for p in tifs:
+    for p in everything:
         with rasterio.open(p) as src:
             assert src.crs == template["crs"], p
             assert src.transform == template["transform"], p
             assert (src.height, src.width) == template["shape"], p
             assert src.count == 1
             layer = p.stem
-            if layer in CATEGORICAL or ("ensemble" in p.parts and layer in ENSEMBLE_CATEGORICAL):
+            if src.dtypes[0] == "uint8" and p not in tifs:  # community counts
+                assert src.nodata == 255, p
+            elif layer in CATEGORICAL or ("ensemble" in p.parts and layer in ENSEMBLE_CATEGORICAL):
                 assert src.dtypes[0] == "uint8" and src.nodata == 255, p
             else:
                 assert src.dtypes[0] == "float32", p
@@ -150,8 +153,11 @@ def test_gdalinfo_reads_category_names(demo, layer):
 
 
 def test_present_layers_read_by_gdalinfo(demo):
+    from ceiling.model import load_models
+
     info = _gdalinfo(demo / "sp_a" / "present" / "limiting.tif")
-    assert info["bands"][0]["categories"] == FACTORS
+    # the codes index the factors in the species' minimum (config order; screening may drop some)
+    assert info["bands"][0]["categories"] == load_models(demo / "model.json")["sp_a"].factor_names
     assert info["metadata"]["IMAGE_STRUCTURE"]["LAYOUT"] == "COG"
 
 
