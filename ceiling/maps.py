@@ -36,6 +36,7 @@ import math
 import multiprocessing
 import os
 import warnings
+import weakref
 from collections.abc import Callable, Iterable, Sequence
 from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass
@@ -88,6 +89,7 @@ DPI = 200
 MAX_SIDE = 1000  # cells read along the longer side of a grid; bigger grids are read decimated
 NODATA_BG = "#bdbdbd"  # neutral grey, apart from every class colour and the light ends of the scales
 OUTLINE = "#636363"
+GRATICULE = "#8c8c8c"
 HATCH_COLOUR = "#252525"
 HATCH = "//////"
 CMAP_CEILING = "viridis"
@@ -367,17 +369,24 @@ def _lat(v: float, _pos: Any = None) -> str:
 
 
 def _style_axes(ax: Any, layer: MapLayer, aspect: float, *, labels: bool = True, xlabels: bool = True,
-                ylabels: bool = True) -> None:
+                ylabels: bool = True) -> list[Any]:
+    """Limits, aspect, ticks in CRS units and a graticule at the ticks; returns the artists that
+    must stay on top of the map (graticule and frame)."""
     left, right, bottom, top = layer.extent
     ax.set_xlim(left, right)
     ax.set_ylim(bottom, top)
     ax.set_aspect(aspect, adjustable="box", anchor="C")
     ax.set_facecolor(NODATA_BG)
-    ax.xaxis.set_major_locator(ticker.MaxNLocator(4, steps=[1, 2, 2.5, 5, 10]))
-    ax.yaxis.set_major_locator(ticker.MaxNLocator(4, steps=[1, 2, 2.5, 5, 10]))
+    steps = [1, 2, 2.5, 5, 10]
+    xt = [v for v in ticker.MaxNLocator(4, steps=steps).tick_values(left, right) if left <= v <= right]
+    yt = [v for v in ticker.MaxNLocator(4, steps=steps).tick_values(bottom, top) if bottom <= v <= top]
+    ax.set_xticks(xt)
+    ax.set_yticks(yt)
     ax.tick_params(labelsize=6, length=2, pad=1.5, labelbottom=xlabels, labelleft=ylabels)
-    ax.grid(True, color="#969696", lw=0.35, ls=(0, (2, 2)), alpha=0.8)
-    ax.set_axisbelow(False)
+    grid = dict(colors=GRATICULE, linewidths=0.35, linestyles=(0, (2, 2)), zorder=2.5)
+    graticule = [ax.vlines(xt, bottom, top, **grid), ax.hlines(yt, left, right, **grid)]
+    for g in graticule:
+        g.set_gid("graticule")
     crs = layer.crs
     if crs is not None and crs.is_geographic:
         ax.xaxis.set_major_formatter(ticker.FuncFormatter(_lon))
@@ -398,6 +407,7 @@ def _style_axes(ax: Any, layer: MapLayer, aspect: float, *, labels: bool = True,
     for s in ax.spines.values():
         s.set_linewidth(0.5)
         s.set_color("#525252")
+    return [*graticule, *ax.spines.values()]
 
 
 def _centres(layer: MapLayer) -> tuple[np.ndarray, np.ndarray]:
@@ -408,34 +418,33 @@ def _centres(layer: MapLayer) -> tuple[np.ndarray, np.ndarray]:
     return x, y
 
 
-def _outline(ax: Any, layer: MapLayer) -> None:
+def _outline(ax: Any, layer: MapLayer) -> Any:
     """A thin grey line around the valid cells (contour lines straight from contourpy: cheap)."""
     valid = layer.valid
     if valid.all() or not valid.any():
-        return
+        return None
     import contourpy
     from matplotlib.collections import LineCollection
 
     x, y = _centres(layer)
     lines = contourpy.contour_generator(x, y, valid.astype(np.float64), line_type="Separate").lines(0.5)
-    ax.add_collection(LineCollection(lines, colors=OUTLINE, linewidths=0.45, zorder=2), autolim=False)
+    return ax.add_collection(LineCollection(lines, colors=OUTLINE, linewidths=0.45, zorder=2), autolim=False)
 
 
-def _hatch(ax: Any, layer: MapLayer, mask: np.ndarray) -> bool:
-    """Hatch (and outline) the cells where ``mask`` is true; False when there are none."""
+def _hatch(ax: Any, layer: MapLayer, mask: np.ndarray) -> list[Any]:
+    """Hatch (and outline) the cells where ``mask`` is true; the artists drawn (none without such cells)."""
     if not mask.any():
-        return False
+        return []
     x, y = _centres(layer)
     m = mask.astype(np.float32)
     cs = ax.contourf(x, y, m, levels=[0.5, 1.5], colors="none", hatches=[HATCH])
     cs.set_edgecolor(HATCH_COLOUR)
     cs.set_linewidth(0)
-    ax.contour(x, y, m, levels=[0.5], colors=HATCH_COLOUR, linewidths=0.4)
-    return True
+    return [cs, ax.contour(x, y, m, levels=[0.5], colors=HATCH_COLOUR, linewidths=0.4)]
 
 
-def _north_arrow(ax: Any) -> None:
-    ax.annotate("N", xy=(0.93, 0.97), xytext=(0.93, 0.80), xycoords="axes fraction", ha="center", va="center",
+def _north_arrow(ax: Any) -> Any:
+    return ax.annotate("N", xy=(0.93, 0.97), xytext=(0.93, 0.80), xycoords="axes fraction", ha="center", va="center",
                 fontsize=6, fontweight="bold", arrowprops=dict(arrowstyle="-|>", lw=0.7, color="#252525",
                                                                shrinkA=4, shrinkB=0, mutation_scale=6))
 
@@ -506,26 +515,27 @@ def _load_panel(info: RunInfo, species: str, key: tuple[str, str, str], layer: s
     return p
 
 
-def _draw_panel(ax: Any, p: _Panel, limits: Limits, aspect: float, *, xlabels: bool = True, ylabels: bool = True) -> Any:
+def _draw_panel(ax: Any, p: _Panel, limits: Limits, aspect: float, acc: _Layers, *, xlabels: bool = True,
+                ylabels: bool = True) -> Any:
     """Draw the map; returns the image (continuous) for a colour bar, or None (categorical)."""
-    _style_axes(ax, p.layer, aspect, xlabels=xlabels, ylabels=ylabels)
+    on_top = _style_axes(ax, p.layer, aspect, xlabels=xlabels, ylabels=ylabels)
     im = None
     if p.categories is not None:
-        ax.imshow(_rgba(p.layer.data, p.categories), extent=p.layer.extent, origin="upper",
-                  interpolation="nearest", aspect=aspect, zorder=1)
+        shown = ax.imshow(_rgba(p.layer.data, p.categories), extent=p.layer.extent, origin="upper",
+                          interpolation="nearest", aspect=aspect, zorder=1)
     else:
         cmap_name, norm = (p.cmap, p.norm) if p.norm is not None else _norm_for(p.name, limits)
         cmap = matplotlib.colormaps[cmap_name or CMAP_CEILING].with_extremes(bad=(0, 0, 0, 0))
-        im = ax.imshow(p.layer.data, cmap=cmap, norm=norm, extent=p.layer.extent, origin="upper",
-                       interpolation="nearest", aspect=aspect, zorder=1)
-    _outline(ax, p.layer)
-    if p.hatch is not None:
-        _hatch(ax, p.layer, p.hatch)
+        im = shown = ax.imshow(p.layer.data, cmap=cmap, norm=norm, extent=p.layer.extent, origin="upper",
+                               interpolation="nearest", aspect=aspect, zorder=1)
+    acc.map_axes.append(ax)
+    acc.dynamic(shown, _outline(ax, p.layer), *(_hatch(ax, p.layer, p.hatch) if p.hatch is not None else []))
+    acc.on_top(*on_top)
     ax.set_title(p.title, fontsize=7.5, pad=3)
     return im
 
 
-def _side_key(fig: Figure, ax: Any, rect: Sequence[float], p: _Panel, im: Any) -> None:
+def _side_key(fig: Figure, ax: Any, rect: Sequence[float], p: _Panel, im: Any, acc: _Layers) -> None:
     """A colour bar, or a legend of the classes, in the strip to the right of a panel."""
     x, y, w, h = rect
     hatch = [_hatch_handle(p.hatch_label)] if p.hatch is not None and p.hatch.any() else []
@@ -537,13 +547,93 @@ def _side_key(fig: Figure, ax: Any, rect: Sequence[float], p: _Panel, im: Any) -
         cb.outline.set_linewidth(0.4)
         cb.set_label(p.scale if p.scale is not None else SCALE_LABELS.get(p.name, ""), fontsize=5.5, labelpad=2)
         if hatch:
-            ax.legend(handles=hatch, loc="upper left", bbox_to_anchor=(0.0, -0.04), fontsize=5.5, frameon=False,
-                      handlelength=1.4, borderaxespad=0.0)
+            acc.dynamic(ax.legend(handles=hatch, loc="upper left", bbox_to_anchor=(0.0, -0.04), fontsize=5.5,
+                                  frameon=False, handlelength=1.4, borderaxespad=0.0))
     else:
         handles = _category_handles(p.categories or ())
-        ax.legend(handles=[*handles, _nodata_handle(), *hatch], title=LEGEND_TITLES.get(p.name, p.name),
-                  title_fontsize=6, fontsize=5.5, loc="center left", bbox_to_anchor=(1.03, 0.5), frameon=False,
-                  handlelength=1.2, handleheight=0.9, borderaxespad=0.0, labelspacing=0.35)
+        leg = ax.legend(handles=[*handles, _nodata_handle(), *hatch], title=LEGEND_TITLES.get(p.name, p.name),
+                        title_fontsize=6, fontsize=5.5, loc="center left", bbox_to_anchor=(1.03, 0.5), frameon=False,
+                        handlelength=1.2, handleheight=0.9, borderaxespad=0.0, labelspacing=0.35)
+        if hatch:  # the classes are the same for every climate; the hatch entry is not
+            acc.dynamic(leg)
+
+
+def _norm_sig(norm: Any) -> tuple[Any, ...] | None:
+    if norm is None:
+        return None
+    extra = tuple(np.asarray(norm.boundaries).tolist()) if isinstance(norm, mcolors.BoundaryNorm) else ()
+    return (type(norm).__name__, norm.vmin, norm.vmax, getattr(norm, "vcenter", None), extra)
+
+
+def _panel_sig(p: _Panel) -> tuple[Any, ...]:
+    """What the static parts of a panel depend on (its frame, ticks, title, colour bar or legend)."""
+    return (p.name, p.title, p.categories, p.cmap, _norm_sig(p.norm), p.scale)
+
+
+def _layer_sig(layer: MapLayer) -> tuple[Any, ...]:
+    return (layer.extent, layer.data.shape, layer.crs.to_wkt() if layer.crs is not None else None)
+
+
+class _Layers:
+    """The parts of a map sheet that change from climate to climate (maps, outlines, hatching,
+    titles, notes) apart from the static ones (frames, ticks, colour bars, class legends).
+
+    The static parts of sheets with the same ``key`` are identical, so a worker draws them once
+    and then, for each sheet, draws only the changing parts over a copy of that background: the
+    same pixels as a full draw, in about half the time. ``on_top`` artists are static but drawn
+    again over the maps (graticule, frame, north arrow)."""
+
+    def __init__(self, key: tuple[Any, ...]):
+        self.key = key
+        self.map_axes: list[Any] = []
+        self.order: list[Any] = []
+        self.changing: list[Any] = []
+
+    def dynamic(self, *artists: Any) -> None:
+        for a in artists:
+            if a is not None:
+                self.order.append(a)
+                self.changing.append(a)
+
+    def on_top(self, *artists: Any) -> None:
+        self.order.extend(a for a in artists if a is not None)
+
+    def attach(self, fig: Figure) -> None:
+        _LAYERS[fig] = self
+
+
+_LAYERS: weakref.WeakKeyDictionary = weakref.WeakKeyDictionary()
+_BACKGROUNDS: dict[tuple[Any, ...], Any] = {}  # per process: key -> pixels of the static parts
+_MAX_BACKGROUNDS = 4
+
+
+def _render(fig: Figure) -> None:
+    """Draw ``fig`` on its Agg canvas (over a cached background of its static parts when it has one)."""
+    canvas = fig.canvas
+    layers = _LAYERS.get(fig)
+    if layers is None:
+        canvas.draw()
+        return
+    for ax in layers.map_axes:
+        ax.apply_aspect()
+    background = _BACKGROUNDS.get(layers.key)
+    if background is None:
+        for a in layers.changing:
+            a.set_animated(True)  # left out of the full draw
+        try:
+            canvas.draw()
+        finally:
+            for a in layers.changing:
+                a.set_animated(False)
+        background = canvas.copy_from_bbox(fig.bbox)
+        while len(_BACKGROUNDS) >= _MAX_BACKGROUNDS:
+            _BACKGROUNDS.pop(next(iter(_BACKGROUNDS)))
+        _BACKGROUNDS[layers.key] = background
+    else:
+        canvas.restore_region(background)
+    renderer = canvas.get_renderer()
+    for a in layers.order:
+        a.draw(renderer)
 
 
 class _Grid:
@@ -577,8 +667,8 @@ class _Grid:
         return self._frac(x, y, self.width - x - 0.1, self.height - self.top - self.bottom)
 
 
-def _titles(fig: Figure, g: _Grid, title: str, subtitle: str = CAUTION) -> None:
-    fig.text(0.5, 1 - 0.12 / g.height, title, ha="center", va="top", fontsize=10, fontweight="bold")
+def _titles(fig: Figure, g: _Grid, title: str, acc: _Layers, subtitle: str = CAUTION) -> None:
+    acc.dynamic(fig.text(0.5, 1 - 0.12 / g.height, title, ha="center", va="top", fontsize=10, fontweight="bold"))
     if subtitle:
         fig.text(0.5, 1 - 0.40 / g.height, subtitle, ha="center", va="top", fontsize=7, color="#525252")
 
@@ -608,19 +698,22 @@ def _panel_sheet(panels: list[_Panel], limits: Limits, title: str, note: str) ->
     nrows = math.ceil((n + 1) / ncols)
     g = _Grid(nrows, ncols, ratio, panel_w=2.35, side_w=1.05, wgap=0.25)
     fig = _new_figure(g.width, g.height)
+    acc = _Layers(("sheet", g.width, g.height, ncols, tuple(_panel_sig(p) for p in panels), limits,
+                   _layer_sig(panels[0].layer)))
     for i, p in enumerate(panels):
         r, c = divmod(i, ncols)
         ax = fig.add_axes(g.panel(r, c))
         # degrees (or CRS units) on the outer edges only: every panel has the same extent
-        im = _draw_panel(ax, p, limits, aspect, xlabels=i + ncols >= n, ylabels=c == 0)
-        _side_key(fig, ax, g.side(r, c), p, im)
+        im = _draw_panel(ax, p, limits, aspect, acc, xlabels=i + ncols >= n, ylabels=c == 0)
+        _side_key(fig, ax, g.side(r, c), p, im, acc)
         if i == 0:
-            _north_arrow(ax)
+            acc.on_top(_north_arrow(ax))
     r, c = divmod(len(panels), ncols)
     tx = fig.add_axes(g.panel(r, c))
     tx.set_axis_off()
-    tx.text(0.0, 1.0, note, ha="left", va="top", fontsize=6.5, transform=tx.transAxes, linespacing=1.5)
-    _titles(fig, g, title)
+    acc.dynamic(tx.text(0.0, 1.0, note, ha="left", va="top", fontsize=6.5, transform=tx.transAxes, linespacing=1.5))
+    _titles(fig, g, title, acc)
+    acc.attach(fig)
     return fig
 
 
@@ -677,6 +770,13 @@ def comparison_sheet(info: RunInfo, species: str, model: str, layer: str, limits
     g = _Grid(len(periods), len(scenarios), ratio, panel_w=panel_w, side_w=0.0, wgap=0.45, hgap=0.5,
               extra_right=1.6, top=1.0)
     fig = _new_figure(g.width, g.height)
+    for (sc, pe), p in panels.items():
+        if p is not None:
+            p.title = f"scenario {sc}, {pe}"
+    sub = CAUTION + (" Colour limits shared by every climate of this species." if first.categories is None else "")
+    grid = tuple((sc, pe, None if panels.get((sc, pe)) is None else _panel_sig(panels[(sc, pe)]))
+                 for pe in periods for sc in scenarios)
+    acc = _Layers(("compare", g.width, g.height, len(scenarios), grid, limits, _layer_sig(first.layer), name, sub))
     im, hatched = None, False
     for r, pe in enumerate(periods):
         for c, sc in enumerate(scenarios):
@@ -687,12 +787,11 @@ def comparison_sheet(info: RunInfo, species: str, model: str, layer: str, limits
                 ax.text(0.5, 0.5, f"scenario {sc}, {pe}:\nnot in this run", ha="center", va="center", fontsize=7,
                         transform=ax.transAxes)
                 continue
-            p.title = f"scenario {sc}, {pe}"
-            drawn = _draw_panel(ax, p, limits, aspect, xlabels=r == len(periods) - 1, ylabels=c == 0)
+            drawn = _draw_panel(ax, p, limits, aspect, acc, xlabels=r == len(periods) - 1, ylabels=c == 0)
             im = im if drawn is None else drawn
             hatched = hatched or (p.hatch is not None and bool(p.hatch.any()))
             if r == 0 and c == 0:
-                _north_arrow(ax)
+                acc.on_top(_north_arrow(ax))
     strip = g.right_strip()
     x, y, w, h = strip
     if first.categories is None:
@@ -704,8 +803,8 @@ def comparison_sheet(info: RunInfo, species: str, model: str, layer: str, limits
         if hatched:
             lax = fig.add_axes((x, y, w, 0.15 * h))
             lax.set_axis_off()
-            lax.legend(handles=[_hatch_handle(LOW_AGREEMENT_LABEL if model == ENSEMBLE else NOVEL_HATCH_LABEL)],
-                       loc="upper left", fontsize=6, frameon=False, handlelength=1.4)
+            acc.dynamic(lax.legend(handles=[_hatch_handle(LOW_AGREEMENT_LABEL if model == ENSEMBLE else NOVEL_HATCH_LABEL)],
+                                   loc="upper left", fontsize=6, frameon=False, handlelength=1.4))
     else:
         lax = fig.add_axes(strip)
         lax.set_axis_off()
@@ -716,8 +815,8 @@ def comparison_sheet(info: RunInfo, species: str, model: str, layer: str, limits
     who = "median of the climate models" if model == ENSEMBLE else f"climate model {model}"
     if model == ENSEMBLE and layer == "zone":
         who = "ensemble of the climate models"
-    sub = CAUTION + (" Colour limits shared by every climate of this species." if first.categories is None else "")
-    _titles(fig, g, f"{species}: {what}, {who}", sub)
+    _titles(fig, g, f"{species}: {what}, {who}", acc, sub)
+    acc.attach(fig)
     return fig
 
 
@@ -941,7 +1040,7 @@ def save_figure(fig: Figure, path: str | Path) -> Path:
             from PIL import Image, PngImagePlugin
 
             fig.set_dpi(DPI)
-            fig.canvas.draw()
+            _render(fig)
             rgb = np.asarray(fig.canvas.buffer_rgba())[..., :3]
             info = PngImagePlugin.PngInfo()
             info.add_text("Software", f"ceiling (matplotlib {matplotlib.__version__})")
