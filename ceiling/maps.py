@@ -370,8 +370,8 @@ def _lat(v: float, _pos: Any = None) -> str:
 
 def _style_axes(ax: Any, layer: MapLayer, aspect: float, *, labels: bool = True, xlabels: bool = True,
                 ylabels: bool = True) -> list[Any]:
-    """Limits, aspect, ticks in CRS units and a graticule at the ticks; returns the artists that
-    must stay on top of the map (graticule and frame)."""
+    """Limits, aspect, ticks in CRS units and a graticule at the ticks; returns the artists drawn
+    over the map (graticule and frame)."""
     left, right, bottom, top = layer.extent
     ax.set_xlim(left, right)
     ax.set_ylim(bottom, top)
@@ -530,7 +530,7 @@ def _draw_panel(ax: Any, p: _Panel, limits: Limits, aspect: float, acc: _Layers,
                                interpolation="nearest", aspect=aspect, zorder=1)
     acc.map_axes.append(ax)
     acc.dynamic(shown, _outline(ax, p.layer), *(_hatch(ax, p.layer, p.hatch) if p.hatch is not None else []))
-    acc.on_top(*on_top)
+    acc.dynamic(*on_top)
     ax.set_title(p.title, fontsize=7.5, pad=3)
     return im
 
@@ -579,12 +579,12 @@ class _Layers:
     titles, notes) apart from the static ones (frames, ticks, colour bars, class legends).
 
     The static parts of sheets with the same ``key`` are identical, so a worker draws them once
-    and then, for each sheet, draws only the changing parts over a copy of that background: the
-    same pixels as a full draw, in about half the time. ``on_top`` artists are static but drawn
-    again over the maps (graticule, frame, north arrow)."""
+    and then, for each sheet, draws only the changing parts over a copy of that background, in
+    the order of a full draw: the same pixels in about half the time. What lies over the maps
+    (graticule, frame, north arrow) is drawn with the changing parts."""
 
     def __init__(self, key: tuple[Any, ...]):
-        self.key = key
+        self.key = (key, _rc_fingerprint())
         self.map_axes: list[Any] = []
         self.order: list[Any] = []
         self.changing: list[Any] = []
@@ -595,16 +595,18 @@ class _Layers:
                 self.order.append(a)
                 self.changing.append(a)
 
-    def on_top(self, *artists: Any) -> None:
-        self.order.extend(a for a in artists if a is not None)
-
     def attach(self, fig: Figure) -> None:
         _LAYERS[fig] = self
 
 
+def _rc_fingerprint() -> int:
+    """The matplotlib settings in force (fonts, colours, line widths): part of every background key."""
+    return hash(repr(sorted((k, repr(v)) for k, v in matplotlib.rcParams.items())))
+
+
 _LAYERS: weakref.WeakKeyDictionary = weakref.WeakKeyDictionary()
 _BACKGROUNDS: dict[tuple[Any, ...], Any] = {}  # per process: key -> pixels of the static parts
-_MAX_BACKGROUNDS = 4
+_MAX_BACKGROUNDS = 6
 
 
 def _render(fig: Figure) -> None:
@@ -707,7 +709,7 @@ def _panel_sheet(panels: list[_Panel], limits: Limits, title: str, note: str) ->
         im = _draw_panel(ax, p, limits, aspect, acc, xlabels=i + ncols >= n, ylabels=c == 0)
         _side_key(fig, ax, g.side(r, c), p, im, acc)
         if i == 0:
-            acc.on_top(_north_arrow(ax))
+            acc.dynamic(_north_arrow(ax))
     r, c = divmod(len(panels), ncols)
     tx = fig.add_axes(g.panel(r, c))
     tx.set_axis_off()
@@ -791,7 +793,7 @@ def comparison_sheet(info: RunInfo, species: str, model: str, layer: str, limits
             im = im if drawn is None else drawn
             hatched = hatched or (p.hatch is not None and bool(p.hatch.any()))
             if r == 0 and c == 0:
-                acc.on_top(_north_arrow(ax))
+                acc.dynamic(_north_arrow(ax))
     strip = g.right_strip()
     x, y, w, h = strip
     if first.categories is None:
@@ -1099,12 +1101,16 @@ def figure_tasks(info: RunInfo) -> list[_Task]:
         if present is not None and any(info.has(sp, present, n) for n in UNCERTAINTY_PANELS):
             tasks.append(_Task("uncertainty", sp, (present,), _stem(uncertainty_sheet_name(sp, present))))
         models = list(dict.fromkeys(k[1] for k in info.climates[sp] if k[0] != "present"))
-        for model in models:
-            keys = [k for k in info.climates[sp] if k[0] != "present" and k[1] == model]
-            extra = [n for n in COMPARED_PROBABILITIES if any(info.has(sp, k, n) for k in keys)]
-            # with a single scenario and period the change and zone panels would repeat the map sheet
-            for layer in (("change", "zone") if len(keys) > 1 else ()) + tuple(extra):
-                tasks.append(_Task("compare", sp, (model, layer), _stem(comparison_sheet_name(sp, model, layer))))
+        models = [m for m in models if m != ENSEMBLE] + [m for m in models if m == ENSEMBLE]
+        for layer in ("change", "zone", *COMPARED_PROBABILITIES):  # by layer: alike sheets one after another
+            for model in models:
+                keys = [k for k in info.climates[sp] if k[0] != "present" and k[1] == model]
+                if layer in COMPARED_PROBABILITIES:
+                    wanted = any(info.has(sp, k, layer) for k in keys)
+                else:  # with a single scenario and period the panel would repeat the map sheet
+                    wanted = len(keys) > 1
+                if wanted:
+                    tasks.append(_Task("compare", sp, (model, layer), _stem(comparison_sheet_name(sp, model, layer))))
         if models:
             tasks.append(_Task("areas", sp, (), _stem(limiting_figure_name(sp, "areas"))))
             tasks.append(_Task("switch", sp, (), _stem(limiting_figure_name(sp, "switch"))))
@@ -1180,7 +1186,9 @@ def make_figures(run_dir: str | Path, *, formats: Sequence[str] = ("png",), miss
     n = _workers(len(items), workers)
     if n <= 1:
         return [Path(p) for p in _run_tasks((str(root), items, fmts))]
-    batches = [items[i::n * 2] for i in range(n * 2)]  # interleaved: each batch gets a mix of figure kinds
+    # contiguous batches: alike sheets stay together, so each worker reuses its drawn backgrounds
+    size = math.ceil(len(items) / (2 * n))
+    batches = [items[i:i + size] for i in range(0, len(items), size)]
     with warnings.catch_warnings():
         warnings.filterwarnings("ignore", message=".*multi-threaded.*fork.*", category=DeprecationWarning)
         with ProcessPoolExecutor(max_workers=n, mp_context=multiprocessing.get_context("fork")) as pool:

@@ -305,7 +305,28 @@ def test_map_axes_are_the_grid_extent_in_degrees_north_up(run, info):
     lons = [t.get_text() for t in axes_titled(fig, "Limiting factor").get_xticklabels() if t.get_text()]
     assert lats and all(t.endswith("°S") for t in lats), lats  # the demo island lies at 40-48 S
     assert lons and all(t.endswith("°W") for t in lons), lons
-    assert any(ax.xaxis.get_gridlines()) and ax.xaxis.get_gridlines()[0].get_visible()  # graticule
+    graticule = [c for c in ax.collections if c.get_gid() == "graticule"]
+    assert len(graticule) == 2  # meridians and parallels at the labelled ticks
+    assert sorted(round(float(seg[0][0]), 6) for seg in graticule[0].get_segments()) == \
+        sorted(round(float(v), 6) for v in ax.get_xticks())
+
+
+def test_sheets_drawn_over_a_reused_background_match_a_full_draw(run, info, tmp_path):
+    """Map sheets reuse the drawn static parts (frames, ticks, colour bars, legends) of alike
+    sheets; the pixels must be those of drawing each sheet from scratch."""
+    sp = "sp_c"
+    keys = [k for k in climates(run, sp) if k[1] not in ("", ENSEMBLE)][:3]
+    sheets = [(k, maps.climate_sheet) for k in keys] + [("model-b", None), ("model-a", None)]
+    for what, build in sheets:
+        def make(what=what, build=build):
+            return build(info, sp, what) if build else maps.comparison_sheet(info, sp, what, "zone")
+        p = maps.save_figure(make(), tmp_path / "sheet.png")
+        with Image.open(p) as im:
+            saved = np.asarray(im.convert("RGB"), dtype=np.int16)
+        full = rendered(make()).astype(np.int16)
+        assert saved.shape == full.shape
+        differ = np.abs(saved - full).max(axis=-1) > 0
+        assert differ.mean() < 1e-3, (what, differ.mean())  # a few antialiased edge pixels at most
 
 
 # --- limiting-factor figures --------------------------------------------------------------------------------------

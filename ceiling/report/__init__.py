@@ -121,11 +121,44 @@ def _data_uri(path: Path) -> str:
     return "data:image/png;base64," + base64.b64encode(buf.getvalue()).decode("ascii")
 
 
-def _figure(root: Path, rel: Path, title: str, alt: str | None = None) -> dict[str, str] | None:
+def _figure(root: Path, rel: Path, title: str, alt: str | None = None) -> dict[str, Any] | None:
+    """A figure to embed (its data URI is filled in by :func:`_embed`), or None if the file is missing."""
     p = root / rel
     if not p.is_file():
         return None
-    return {"title": title, "alt": alt or title, "uri": _data_uri(p), "file": rel.as_posix()}
+    return {"title": title, "alt": alt or title, "uri": "", "file": rel.as_posix(), "path": p}
+
+
+def _figures_in(obj: Any):
+    if isinstance(obj, dict):
+        if "path" in obj and "uri" in obj:
+            yield obj
+        else:
+            for v in obj.values():
+                yield from _figures_in(v)
+    elif isinstance(obj, list | tuple):
+        for v in obj:
+            yield from _figures_in(v)
+
+
+def _embed(context: dict[str, Any]) -> None:
+    """Fill in the data URI of every figure of the context (a few worker processes for many)."""
+    import multiprocessing
+    import os
+    from concurrent.futures import ProcessPoolExecutor
+
+    figs = list(_figures_in(context))
+    paths = [f["path"] for f in figs]
+    cpus = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
+    n = min(cpus, 4, len(paths) // 8)
+    if n > 1 and "fork" in multiprocessing.get_all_start_methods():
+        with ProcessPoolExecutor(max_workers=n, mp_context=multiprocessing.get_context("fork")) as pool:
+            uris = list(pool.map(_data_uri, paths, chunksize=4))
+    else:
+        uris = [_data_uri(p) for p in paths]
+    for f, uri in zip(figs, uris):
+        f["uri"] = uri
+        del f["path"]
 
 
 # --- reading the run folder ---------------------------------------------------------------------------------
@@ -534,5 +567,6 @@ def build_report(run_dir: str | Path, *, config: Path | None = None, inputs: Ite
     root = Path(run_dir)
     path = root / REPORT_FILE
     ctx = report_context(root, config=config, inputs=inputs)
+    _embed(ctx)
     ctx["provenance"] = _provenance(root, _manifest(root), path)
     return atomic_write_text(path, render_report(ctx))
