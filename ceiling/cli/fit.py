@@ -8,7 +8,14 @@ import click
 
 from ..config import load_config
 from ..fitting import fit_to_folder
-from .options import bootstrap_opt, config_arg, handle_errors, out_opt, overwrite_opt, with_bootstrap
+from .options import (
+    bootstrap_opt,
+    config_arg,
+    handle_errors,
+    out_opt,
+    overwrite_opt,
+    with_bootstrap,
+)
 
 
 @click.command("fit")

@@ -8,7 +8,14 @@ import click
 
 from ..config import load_config
 from ..running import project_to_folder
-from .options import bootstrap_opt, config_arg, handle_errors, out_opt, overwrite_opt, with_bootstrap
+from .options import (
+    bootstrap_opt,
+    config_arg,
+    handle_errors,
+    out_opt,
+    overwrite_opt,
+    with_bootstrap,
+)
 
 compute_opts = [
     click.option("--workers", type=int, default=None, help="Start a local dask.distributed cluster with N worker processes (loopback)."),
