@@ -11,7 +11,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-__all__ = ["Category", "ZONES", "ZONE_CODE", "ENSEMBLE_ZONES", "ROBUSTNESS", "EXTRAPOLATION", "FACTOR_COLOURS", "NODATA_COLOUR", "factor_categories",
+__all__ = ["layer_categories", "Category", "ZONES", "ZONE_CODE", "ENSEMBLE_ZONES", "ROBUSTNESS", "EXTRAPOLATION", "FACTOR_COLOURS", "NODATA_COLOUR", "factor_categories",
            "switch_categories", "switch_code", "hex_to_rgba"]
 
 NODATA_COLOUR = "#00000000"
@@ -81,3 +81,18 @@ def hex_to_rgba(h: str) -> tuple[int, int, int, int]:
     if len(h) == 6:
         h += "ff"
     return tuple(int(h[i : i + 2], 16) for i in (0, 2, 4, 6))  # type: ignore[return-value]
+
+
+def layer_categories(layer: str, factors: list[str], *, ensemble: bool = False) -> tuple[Category, ...] | None:
+    """The category table of an output layer (None for continuous layers); used by every writer."""
+    if layer in ("limiting", "novel_factor"):
+        return factor_categories(factors)
+    if layer == "zone":
+        return ENSEMBLE_ZONES if ensemble else ZONES
+    if layer == "extrapolated":
+        return EXTRAPOLATION
+    if layer == "robustness":
+        return ROBUSTNESS
+    if layer == "switch":
+        return switch_categories(factors)
+    return None

@@ -57,12 +57,9 @@ from matplotlib.patches import Patch  # noqa: E402
 from rasterio.enums import Resampling  # noqa: E402
 
 from .categories import (  # noqa: E402
-    ENSEMBLE_ZONES,
-    EXTRAPOLATION,
-    ROBUSTNESS,
-    ZONES,
     Category,
     factor_categories,
+    layer_categories,
 )
 from .outputs.atomic import atomic_path  # noqa: E402
 from .outputs.names import (  # noqa: E402
@@ -211,16 +208,9 @@ class RunInfo:
 
     def categories(self, species: str, layer: str, *, ensemble: bool = False) -> tuple[Category, ...] | None:
         """The category table of a layer: the same tables the GeoTIFF writer uses."""
-        fs = list(self.factors[species])
-        if layer in ("limiting", "novel_factor"):
-            return factor_categories(fs)
-        if layer == "zone":
-            return ENSEMBLE_ZONES if ensemble else ZONES
-        if layer == "extrapolated":
-            return EXTRAPOLATION
-        if layer == "robustness":
-            return ROBUSTNESS
-        return None
+        if layer == "switch":  # drawn from the transition table, not as a categorical map
+            return None
+        return layer_categories(layer, list(self.factors[species]), ensemble=ensemble)
 
 
 def run_info(run_dir: str | Path) -> RunInfo:

@@ -28,11 +28,8 @@ import xarray as xr
 from .areas import cell_areas
 from .categories import (
     ENSEMBLE_ZONES,
-    EXTRAPOLATION,
-    ROBUSTNESS,
     ZONES,
-    factor_categories,
-    switch_categories,
+    layer_categories,
 )
 from .cluster import Compute, compute_context
 from .config import RunConfig
@@ -101,20 +98,6 @@ LAYER_META: dict[str, tuple[str, str, str]] = {
     "p_release": ("float32", "probability of release: share of bootstrap replicates", "1"),
     "p_constraint": ("float32", "probability of constraint: share of bootstrap replicates", "1"),
 }
-
-
-def layer_categories(layer: str, factors: list[str], *, ensemble: bool = False):
-    if layer in ("limiting", "novel_factor"):
-        return factor_categories(factors)
-    if layer == "zone":
-        return ENSEMBLE_ZONES if ensemble else ZONES
-    if layer == "extrapolated":
-        return EXTRAPOLATION
-    if layer == "robustness":
-        return ROBUSTNESS
-    if layer == "switch":
-        return switch_categories(factors)
-    return None
 
 
 @dataclass
