@@ -17,7 +17,7 @@ import dask.array as da
 import numpy as np
 from pyproj import CRS, Geod, Transformer
 
-__all__ = ["cell_areas", "zone_area", "EQUAL_AREA_METHODS"]
+__all__ = ["cell_areas", "window_areas", "zone_area", "EQUAL_AREA_METHODS"]
 
 EQUAL_AREA_METHODS = (
     "lambert azimuthal equal area", "albers equal area", "mollweide", "sinusoidal", "equal earth",
@@ -50,24 +50,29 @@ def _is_equal_area(crs: CRS) -> bool:
     return any(m in name for m in EQUAL_AREA_METHODS)
 
 
-def cell_areas(grid, *, chunk: int = 1024) -> da.Array:
-    """Lazy (y, x) float64 array of cell areas in m2 for a :class:`~ceiling.grids.GridSpec`."""
+def window_areas(grid, rows: slice, cols: slice) -> np.ndarray:
+    """Cell areas in m2 of one window of a :class:`~ceiling.grids.GridSpec` (float64, rows x cols;
+    a read-only broadcast view where the area does not vary along a row)."""
     crs = CRS.from_wkt(grid.crs_wkt)
     t = grid.affine
-    ny, nx = grid.shape
+    r0, r1, c0, c1 = rows.start, rows.stop, cols.start, cols.stop
+    shape = (r1 - r0, c1 - c0)
     if crs.is_geographic:
         a, b = _ellipsoid(crs)
-        top = t.f + t.e * np.arange(ny)
-        rows = zone_area(top, top + t.e, abs(t.a), a, b)
-        return da.broadcast_to(da.from_array(rows[:, None], chunks=(chunk, 1)), (ny, nx)).rechunk((chunk, chunk))
+        top = t.f + t.e * np.arange(r0, r1)
+        return np.broadcast_to(zone_area(top, top + t.e, abs(t.a), a, b)[:, None], shape)
     if _is_equal_area(crs):
-        return da.full((ny, nx), abs(t.a * t.e), chunks=(chunk, chunk), dtype=np.float64)
-    a, b = _ellipsoid(crs)
-    wkt = grid.crs_wkt
+        return np.broadcast_to(np.float64(abs(t.a * t.e)), shape)
+    return _geodesic_block(grid.crs_wkt, tuple(t)[:6], r0, r1, c0, c1)
+
+
+def cell_areas(grid, *, chunk: int = 1024) -> da.Array:
+    """Lazy (y, x) float64 array of cell areas in m2 for a :class:`~ceiling.grids.GridSpec`."""
+    ny, nx = grid.shape
 
     def block(block_info=None):
         (r0, r1), (c0, c1) = block_info[None]["array-location"]
-        return _geodesic_block(wkt, tuple(t)[:6], r0, r1, c0, c1)
+        return np.array(window_areas(grid, slice(r0, r1), slice(c0, c1)))
 
     return da.map_blocks(block, chunks=da.core.normalize_chunks((chunk, chunk), (ny, nx)), dtype=np.float64)
 

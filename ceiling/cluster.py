@@ -1,9 +1,13 @@
-"""Where the chunks are computed: dask's threads (default), a local cluster, or a remote one.
+"""Where the chunks are computed: local threads (default), a local cluster, or a remote one.
 
-:func:`compute_context` yields a :class:`Compute` that the projection uses for every
-``dask.compute`` call, with a lock that serialises GeoTIFF window writes (a
-``distributed.Lock`` across worker processes, a thread lock otherwise). Outputs are the same
-on all three: every chunk is computed by the same functions on the same inputs.
+:func:`compute_context` yields a :class:`Compute`. The projection hands it one task per chunk
+(:meth:`Compute.imap`): read the chunk's layers, compute its maps and statistics, encode them;
+the results come back to the calling process, which writes them. On a cluster the tasks run on
+dask.distributed workers (the inputs must be readable there; the outputs are written here). The
+lazy xarray API (:mod:`ceiling.projection`) and the other stages use :meth:`Compute.compute`
+(dask's threaded scheduler, or the cluster), with :attr:`Compute.lock` serialising GeoTIFF
+window writes. Outputs are the same on all three: every chunk is computed by the same
+functions on the same inputs, and written in a fixed order.
 """
 
 from __future__ import annotations
@@ -11,7 +15,7 @@ from __future__ import annotations
 import contextlib
 import os
 import threading
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -32,6 +36,20 @@ class Compute:
 
     def compute(self, *args: Any) -> tuple[Any, ...]:
         return dask.compute(*args, **self.kwargs)
+
+    def imap(self, fn: Callable[[Any, Any], Any], plan: Any, items: Sequence[Any], *,
+             window: int | None = None) -> Iterator[tuple[int, Any]]:
+        """``(i, fn(plan, items[i]))`` for every item, in the order they finish.
+
+        At most ``window`` tasks (default: twice the workers, plus two) are under way at once,
+        so the results waiting to be written stay few. The first task to fail cancels the rest
+        and raises its error here.
+        """
+        window = window or 2 * self.workers + 2
+        if self.client is None:
+            yield from _imap_threads(fn, plan, items, self.workers, window)
+        else:
+            yield from _imap_cluster(self.client, fn, plan, items, window)
 
     def describe(self) -> str:
         if self.kind == "threads":
@@ -69,3 +87,51 @@ def compute_context(*, workers: int | None = None, address: str | None = None, t
     with LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, host="127.0.0.1",
                       dashboard_address=None, silence_logs=logging.WARNING) as cluster, Client(cluster) as client:
         yield Compute("local-cluster", workers, Lock("ceiling-write"), client, {"scheduler": client})
+
+
+def _imap_threads(fn, plan, items, workers: int, window: int) -> Iterator[tuple[int, Any]]:
+    from concurrent.futures import FIRST_COMPLETED, ThreadPoolExecutor, wait
+
+    pool = ThreadPoolExecutor(max_workers=max(1, workers), thread_name_prefix="ceiling-chunk")
+    pending: dict[Any, int] = {}
+    nxt = 0
+    try:
+        while nxt < len(items) or pending:
+            while nxt < len(items) and len(pending) < window:
+                pending[pool.submit(fn, plan, items[nxt])] = nxt
+                nxt += 1
+            done, _ = wait(pending, return_when=FIRST_COMPLETED)
+            for fut in sorted(done, key=pending.__getitem__):
+                i = pending.pop(fut)
+                yield i, fut.result()
+    finally:
+        pool.shutdown(wait=True, cancel_futures=True)
+
+
+def _imap_cluster(client, fn, plan, items, window: int) -> Iterator[tuple[int, Any]]:
+    from distributed import as_completed
+
+    remote = client.scatter(plan, broadcast=True, hash=False)
+    pending: dict[Any, int] = {}
+    nxt = 0
+
+    def submit() -> Any:
+        nonlocal nxt
+        fut = client.submit(fn, remote, items[nxt], pure=False, key=f"ceiling-chunk-{id(remote)}-{nxt}")
+        pending[fut] = nxt
+        nxt += 1
+        return fut
+
+    started = [submit() for _ in range(min(window, len(items)))]
+    queue = as_completed(started)
+    try:
+        for fut in queue:
+            i = pending.pop(fut)
+            result = fut.result()
+            fut.release()
+            if nxt < len(items):
+                queue.add(submit())
+            yield i, result
+    finally:
+        for fut in pending:
+            fut.cancel()

@@ -20,7 +20,7 @@ import numpy as np
 import rasterio
 import xarray as xr
 from dask.base import tokenize
-from rasterio.enums import Resampling
+from rasterio.enums import MaskFlags, Resampling
 from rasterio.errors import RasterioIOError
 from rasterio.vrt import WarpedVRT
 from rasterio.windows import Window
@@ -29,7 +29,7 @@ from .errors import DataError, InputFileError
 from .scenarios import LayerRef
 from .units import linear_conversion
 
-__all__ = ["GridSpec", "LayerInfo", "BlockReader", "inspect_layer", "open_layer", "gdal_name", "template_grid"]
+__all__ = ["GridSpec", "LayerInfo", "BlockReader", "inspect_layer", "layer_reader", "open_layer", "gdal_name", "template_grid"]
 
 
 @dataclass(frozen=True)
@@ -182,9 +182,12 @@ class BlockReader:
 
     def __init__(
         self, info: LayerInfo, template: GridSpec, *, resampling: str = "bilinear",
-        scale: float = 1.0, offset: float = 0.0, cache_mb: int = 64,
+        scale: float = 1.0, offset: float = 0.0, cache_mb: int = 64, units: str = "", source: str = "",
+        source_units: str = "",
     ) -> None:
         self.name = info.name
+        self.dtype_in = info.dtype
+        self.units, self.source, self.source_units = units, source, source_units
         self.nodata = info.nodata
         self.template = template
         self.aligned = info.grid.matches(template)
@@ -196,9 +199,24 @@ class BlockReader:
         self.dtype = np.dtype("float32")
         self.ndim = 2
 
-    def _read(self, window: Window) -> np.ma.MaskedArray:
+    def _plain(self, src: Any) -> bool:
+        """True when the window can be read as float32 and its nodata marked by one comparison:
+        float32 values, a nodata value exact in float32 (or none) as the only mask, no rescaling."""
+        if self.dtype_in != "float32" or self.scale != 1.0 or self.offset != 0.0:
+            return False
+        if self.nodata is not None and not math.isnan(self.nodata) and float(np.float32(self.nodata)) != self.nodata:
+            return False
+        flags = src.mask_flag_enums[0]
+        return all(f in (MaskFlags.nodata, MaskFlags.all_valid) for f in flags)
+
+    def _read(self, window: Window) -> np.ndarray | np.ma.MaskedArray:
         with rasterio.Env(GDAL_CACHEMAX=self.cache_mb, GDAL_PAM_ENABLED="NO"), rasterio.open(self.name) as src:
             if self.aligned:
+                if self._plain(src):  # the common case, without float64 and masked temporaries
+                    a = src.read(1, window=window)
+                    if self.nodata is not None and not math.isnan(self.nodata):
+                        a[a == np.float32(self.nodata)] = np.nan
+                    return a
                 return src.read(1, window=window, masked=True)
             with WarpedVRT(
                 src, crs=self.template.crs, transform=self.template.affine,
@@ -221,17 +239,19 @@ class BlockReader:
                 f"layer {self.name}: reading rows {r0}-{r1}, columns {c0}-{c1} failed ({detail}); the file is "
                 "truncated or corrupt: re-create or re-download it"
             ) from None
+        if not isinstance(data, np.ma.MaskedArray):
+            return data
         out = np.ma.filled(data.astype(np.float64), np.nan)
         if self.scale != 1.0 or self.offset != 0.0:
             out = out * self.scale + self.offset
         return out.astype(np.float32)
 
 
-def open_layer(
-    ref: LayerRef, template: GridSpec, *, factor: str, units: str | None, chunk: int = 1024,
-    resampling: str = "bilinear", cache_mb: int = 64,
-) -> xr.DataArray:
-    """A lazy, aligned, unit-converted layer on the template grid."""
+def layer_reader(
+    ref: LayerRef, template: GridSpec, *, factor: str, units: str | None, resampling: str = "bilinear",
+    cache_mb: int = 64,
+) -> BlockReader:
+    """The chunk reader of a layer on the template grid, in ``units`` (checked, nothing read)."""
     info = inspect_layer(ref, factor=factor)
     where = f"layer of '{factor}' ({ref.describe()})"
     if not _overlaps(info.grid, template):
@@ -244,13 +264,20 @@ def open_layer(
         scale, offset = linear_conversion(info.units, units, where=where)
     # unpack first, then convert: (stored * s + o) * scale + offset
     scale, offset = info.scale * scale, info.offset * scale + offset
-    if np.dtype(info.dtype).kind in "iu" and info.nodata is None:
-        pass  # integer layers without nodata are used as they are
-    reader = BlockReader(info, template, resampling=resampling, scale=scale, offset=offset, cache_mb=cache_mb)
+    return BlockReader(info, template, resampling=resampling, scale=scale, offset=offset, cache_mb=cache_mb,
+                       units=units or info.units or "", source=str(ref.path), source_units=info.units or "")
+
+
+def open_layer(
+    ref: LayerRef, template: GridSpec, *, factor: str, units: str | None, chunk: int = 1024,
+    resampling: str = "bilinear", cache_mb: int = 64,
+) -> xr.DataArray:
+    """A lazy, aligned, unit-converted layer on the template grid."""
+    reader = layer_reader(ref, template, factor=factor, units=units, resampling=resampling, cache_mb=cache_mb)
     arr = da.from_array(reader, chunks=(chunk, chunk), asarray=True, fancy=False, lock=False,
-                        name=f"layer-{factor}-{tokenize(info.name, template, scale, offset, resampling)}",
+                        name=f"layer-{factor}-{tokenize(reader.name, template, reader.scale, reader.offset, resampling)}",
                         meta=np.empty((0, 0), np.float32))
     return xr.DataArray(
         arr, dims=("y", "x"), coords=template.coords(), name=factor,
-        attrs={"units": units or info.units or "", "source": str(ref.path), "source_units": info.units or ""},
+        attrs={"units": reader.units, "source": reader.source, "source_units": reader.source_units},
     )

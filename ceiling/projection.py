@@ -17,14 +17,14 @@ import numpy as np
 import xarray as xr
 
 from .errors import DataError
-from .grids import GridSpec, open_layer
+from .grids import BlockReader, GridSpec, layer_reader, open_layer
 from .kernels import NODATA_CODE, change_kernel, switch_kernel, zone_kernel
 from .kernels_fast import evaluate as evaluate_fast
 from .model import CeilingModel
 from .novelty import check_reference, mess_kernel
 from .scenarios import Climate, ProjectionOptions
 
-__all__ = ["uncertainty", "has_replicates", "PRESENT_BOUNDS", "FUTURE_BOUNDS", "open_climate", "project", "novel_rule", "with_policy", "compare", "climate_stats", "valid_counts", "StatsLayout", "model_units"]
+__all__ = ["climate_readers", "uncertainty", "has_replicates", "PRESENT_BOUNDS", "FUTURE_BOUNDS", "open_climate", "project", "novel_rule", "with_policy", "compare", "climate_stats", "valid_counts", "StatsLayout", "model_units"]
 
 
 def model_units(models: Sequence[CeilingModel], factors: Sequence[str]) -> dict[str, str]:
@@ -41,6 +41,17 @@ def model_units(models: Sequence[CeilingModel], factors: Sequence[str]) -> dict[
                 "present-day layer) and fit again"
             )
     return out
+
+
+def climate_readers(
+    climate: Climate, template: GridSpec, factors: Sequence[str], units: dict[str, str], opts: ProjectionOptions
+) -> dict[str, BlockReader]:
+    """The chunk readers of one climate's layers (checked now; nothing is read)."""
+    missing = [f for f in factors if f not in climate.layers]
+    if missing:
+        raise DataError(f"climate {climate.label} has no layer for factor(s) {', '.join(missing)}; add them to the config")
+    return {f: layer_reader(climate.layers[f], template, factor=f, units=units[f], resampling=opts.resampling,
+                            cache_mb=opts.gdal_cache_mb) for f in factors}
 
 
 def open_climate(

@@ -20,25 +20,26 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-import dask.array as da
 import numpy as np
 import pandas as pd
+import rasterio
 import xarray as xr
 
-from .areas import cell_areas
+from .areas import window_areas
 from .categories import (
     ENSEMBLE_ZONES,
     ZONES,
     layer_categories,
 )
-from .cluster import Compute, compute_context
+from .climate_writer import LAYER_META, done_record_name, map_specs, readback_reader, write_climate
+from .cluster import compute_context
 from .config import RunConfig
 from .errors import DataError
-from .grids import BlockReader, GridSpec, inspect_layer, template_grid
+from .grids import GridSpec, template_grid
 from .kernels import NODATA_CODE
+from .kernels_climate import ChunkParams
 from .model import CeilingModel, ModelSet
 from .outputs.atomic import atomic_write_text
-from .outputs.geotiff import WindowTarget, create_tiled, finalize_cog
 from .outputs.names import (
     ENSEMBLE,
     ENSEMBLE_LAYERS,
@@ -49,55 +50,23 @@ from .outputs.names import (
     TRANSITIONS_FILE,
     layer_path,
 )
-from .outputs.netcdf import write_netcdf
+from .outputs.netcdf import NetcdfVariable, NetcdfWriter, create_netcdf
 from .projection import (
     FUTURE_BOUNDS,
     PRESENT_BOUNDS,
     StatsLayout,
-    climate_stats,
-    compare,
+    climate_readers,
     has_replicates,
     model_units,
     novel_rule,
-    open_climate,
-    project,
-    uncertainty,
-    valid_counts,
+    with_policy,
 )
 from .scenarios import PRESENT, Climate, LayerRef, ProjectionOptions, climates, projection_options
+from .tasks import ClimatePlan, EnsemblePlan
 
-__all__ = ["ProjectionRun", "RunResult", "run_projection", "project_to_folder", "LAYER_META"]
+__all__ = ["ProjectionRun", "RunResult", "run_projection", "project_to_folder", "LAYER_META", "done_record_name"]
 
 log = logging.getLogger(__name__)
-
-# dtype, long name, units
-LAYER_META: dict[str, tuple[str, str, str]] = {
-    "ceiling": ("float32", "potential maximum abundance (ceiling), in survey abundance units", "1"),
-    "change": ("float32", "change of the ceiling, future minus present", "1"),
-    "change_pct": ("float32", "change of the ceiling relative to the present", "%"),
-    "limiting": ("uint8", "limiting factor (law of the minimum)", ""),
-    "zone": ("uint8", "zone class of ceiling change", ""),
-    "switch": ("uint8", "limiting-factor switch, present to future", ""),
-    "novelty": ("float32", "similarity of the climate to the survey's climates (MESS); negative: novel", "%"),
-    "novel_factor": ("uint8", "most dissimilar factor (MESS)", ""),
-    "extrapolated": ("uint8", "novel climate: at least one factor outside the survey's range", ""),
-    "median_ceiling": ("float32", "ensemble median of the future ceiling", "1"),
-    "mean_ceiling": ("float32", "ensemble mean of the future ceiling", "1"),
-    "median_change": ("float32", "ensemble median of the change of the ceiling", "1"),
-    "mean_change": ("float32", "ensemble mean of the change of the ceiling", "1"),
-    "change_min": ("float32", "smallest change of the ceiling across climate models", "1"),
-    "change_max": ("float32", "largest change of the ceiling across climate models", "1"),
-    "change_iqr": ("float32", "interquartile range of the change across climate models", "1"),
-    "agreement": ("float32", "fraction of climate models whose change has the sign of the ensemble median", "1"),
-    "robustness": ("uint8", "agreement class of the change across climate models", ""),
-    "limiting_share": ("float32", "share of climate models naming the most common limiting factor", "1"),
-    "ceiling_lower": ("float32", "lower bootstrap bound of the ceiling", "1"),
-    "ceiling_upper": ("float32", "upper bootstrap bound of the ceiling", "1"),
-    "change_lower": ("float32", "lower bootstrap bound of the change of the ceiling", "1"),
-    "change_upper": ("float32", "upper bootstrap bound of the change of the ceiling", "1"),
-    "p_release": ("float32", "probability of release: share of bootstrap replicates", "1"),
-    "p_constraint": ("float32", "probability of constraint: share of bootstrap replicates", "1"),
-}
 
 
 @dataclass
@@ -125,16 +94,6 @@ class ProjectionRun:
             return "present only: no futures in the config"
         with pd.option_context("display.width", 160, "display.max_columns", 20):
             return h.to_string(index=False, float_format=lambda v: f"{v:,.1f}")
-
-
-def _read_back(path: Path, grid: GridSpec, chunk: int, *, code: bool) -> da.Array:
-    info = inspect_layer(LayerRef(path), factor=path.stem)
-    reader = BlockReader(info, grid, resampling="nearest")
-    arr = da.from_array(reader, chunks=(chunk, chunk), asarray=True, lock=False, fancy=False,
-                        name=f"readback-{path}", meta=np.empty((0, 0), np.float32))
-    if code:
-        return da.where(da.isnan(arr), NODATA_CODE, arr).astype(np.uint8)
-    return arr
 
 
 def _layout(m: CeilingModel) -> StatsLayout:
@@ -194,121 +153,6 @@ def _weighted_median(hist: np.ndarray, lay: StatsLayout) -> float:
     return float(lo + frac * (hi - lo))
 
 
-def _group_size(comp: Compute) -> int:
-    """Chunks per compute: enough to keep every worker busy, few enough to bound memory."""
-    return max(2, 2 * comp.workers) if comp.kind == "threads" else max(4, 4 * comp.workers)
-
-
-def _block_groups(chunks: tuple[tuple[int, ...], ...], *, per_group: int):
-    """((block rows, block cols), (row slice, col slice)) for groups of blocks, row by row."""
-    rows = np.cumsum((0, *chunks[0]))
-    cols = np.cumsum((0, *chunks[1]))
-    for bi in range(len(chunks[0])):
-        for bj0 in range(0, len(chunks[1]), per_group):
-            bj1 = min(bj0 + per_group, len(chunks[1]))
-            yield (bi, bi + 1, bj0, bj1), (slice(int(rows[bi]), int(rows[bi + 1])), slice(int(cols[bj0]), int(cols[bj1])))
-
-
-def _write_climate(
-    comp: Compute, stage: Path, grid: GridSpec, climate: Climate, layers: dict[str, da.Array],
-    models: Sequence[CeilingModel], factor_lists: list[list[str]], stats, valid, chunk: int,
-    used: Sequence[str], say: Callable[[str], None] | None = None, novel: str = "", ensemble: bool = False,
-) -> tuple[list[Path], list[np.ndarray]]:
-    """Stream every map of one climate and reduce its statistics, a group of blocks at a time.
-
-    Each group (a few chunks of one chunk row) is one compute: its maps are written and its
-    statistics reduced before the next group starts, so memory is bounded by the group, not by
-    the grid. Within a group, every chunk of every input is read once for all outputs.
-    """
-    record = stage / done_record_name(climate.key)
-    reused = _reuse_climate(record, stage, len(stats))
-    if reused is not None:
-        if say is not None:
-            say(f"      {climate.label}: reused {len(reused[0])} complete files (--resume)")
-        return reused
-    sources, targets, finals = [], [], []
-    for i, m in enumerate(models):
-        for name in layers:
-            dtype, long_name, units = LAYER_META[name]
-            final = stage / layer_path(m.species, climate.key, name)
-            final.parent.mkdir(parents=True, exist_ok=True)
-            tmp = final.with_name(f".stream-{final.name}")
-            cats = layer_categories(name, factor_lists[i], ensemble=ensemble)
-            tags = {"species": m.species, "scenario": climate.scenario, "climate_model": climate.model,
-                    "period": climate.period, "layer": name, "novel_cells": novel,
-                    "caution": "potential upper limit of abundance, not a forecast; needs expert review"}
-            create_tiled(tmp, grid, dtype=dtype, description=long_name, units=units, chunk=chunk, categories=cats, tags=tags)
-            sources.append(layers[name][i])
-            targets.append(WindowTarget(tmp, dtype))
-            finals.append((tmp, final, cats, long_name))
-    vectors = [np.zeros(st.shape[-1]) for st in stats]
-    counts = np.zeros(len(valid), dtype=np.int64)
-    groups = list(_block_groups(sources[0].chunks[-2:], per_group=_group_size(comp)))
-    for g, ((bi0, bi1, bj0, bj1), (rs, cs)) in enumerate(groups, start=1):
-        srcs = [s[rs, cs] for s in sources]
-        stored = da.store(srcs, targets, regions=[(rs, cs)] * len(srcs), lock=comp.lock, compute=False)
-        parts = [st[bi0:bi1, bj0:bj1].sum(axis=(0, 1)) for st in stats]
-        vparts = [v[bi0:bi1, bj0:bj1].sum() for v in valid]
-        res = comp.compute(stored, *parts, *vparts)
-        for k, v in enumerate(res[1 : 1 + len(parts)]):
-            vectors[k] += np.asarray(v)
-        counts += np.asarray(res[1 + len(parts):], dtype=np.int64)
-        if say is not None and len(groups) >= 20 and g % max(1, len(groups) // 10) == 0:
-            say(f"      {climate.label}: {100 * g // len(groups)}% of the grid")
-    for f, n in zip(used, counts):
-        if int(n) == 0:
-            raise DataError(
-                f"layer of '{f}' for {climate.label} ({climate.layers[f].describe()}) is all nodata inside the "
-                "study area; check the file and the mask"
-            )
-    written = []
-    for tmp, final, cats, long_name in finals:
-        written += finalize_cog(tmp, final, categorical=cats is not None, categories=cats, description=long_name)
-    _write_done_record(record, stage, written, vectors)
-    return written, vectors
-
-
-# --- resume records: one per climate, written once its files are final ------------------------
-
-def done_record_name(key: tuple[str, str, str]) -> str:
-    from .outputs.folder import DONE_PREFIX
-    from .outputs.names import safe_part
-
-    return DONE_PREFIX + "__".join(safe_part(k) for k in key) + ".json"
-
-
-def _write_done_record(record: Path, stage: Path, written: list[Path], vectors: list[np.ndarray]) -> None:
-    """List a climate's finished files (with sha256) and its summary vectors, for ``--resume``."""
-    import json
-
-    from .outputs.atomic import sha256_file
-
-    doc = {"files": {str(p.relative_to(stage)): sha256_file(p) for p in written},
-           "vectors": [np.asarray(v, dtype=np.float64).tolist() for v in vectors]}
-    atomic_write_text(record, json.dumps(doc))
-
-
-def _reuse_climate(record: Path, stage: Path, n_vectors: int) -> tuple[list[Path], list[np.ndarray]] | None:
-    """The files and summary vectors of a climate completed by an interrupted run, or None when
-    there is no record or any listed file is missing or differs from its checksum."""
-    import json
-
-    from .outputs.atomic import sha256_file
-
-    if not record.is_file():
-        return None
-    try:
-        doc = json.loads(record.read_text(encoding="utf-8"))
-        files = [(stage / rel, sha) for rel, sha in doc["files"].items()]
-        vectors = [np.asarray(v, dtype=np.float64) for v in doc["vectors"]]
-    except (ValueError, KeyError, TypeError, AttributeError):
-        return None
-    if len(vectors) != n_vectors or not all(p.is_file() and sha256_file(p) == sha for p, sha in files):
-        record.unlink(missing_ok=True)
-        return None
-    return [p for p, _ in files], vectors
-
-
 def output_bytes(grid: GridSpec, n_species: int, climates_: Sequence[Climate], *, bootstrap: bool) -> int:
     """Upper bound of a projection's output size: every map uncompressed, twice (GeoTIFF + NetCDF)."""
     def per_cell(names) -> int:
@@ -361,91 +205,87 @@ def run_projection(
     units = model_units(ms, used)
     tref = LayerRef(Path(opts.template)) if opts.template else cl[0].layers[used[0]]
     grid = template_grid(tref, factor=used[0])
-    area = cell_areas(grid, chunk=opts.chunk)
     mask = _mask(opts, grid, cfg)
     layouts = [_layout(m) for m in ms]
     factor_lists = [m.factor_names for m in ms]
+    species = [m.species for m in ms]
     timings: dict[str, float] = {}
     notes: list[str] = []
     written: list[Path] = []
     rows: list[dict] = []
     trans: list[dict] = []
     # open every climate's layers first, so that a bad layer is refused before any computing
-    opened = [open_climate(c, grid, used, units, opts) for c in cl]
+    opened = [climate_readers(c, grid, used, units, opts) for c in cl]
+    from .novelty import check_reference
     from .outputs.folder import check_free_space
 
-    check_free_space(stage, output_bytes(grid, len(ms), cl, bootstrap=has_replicates(ms)), what="the projection's maps")
-    with compute_context(workers=workers, address=address, threads=threads) as comp:
-        t0 = time.perf_counter()
-        pres_ds = project(ms, opened[0], mask=mask, novel=opts.novel)
-        pres_layers = {n: pres_ds[n].data for n in PRESENT_LAYERS}
-        boot = has_replicates(ms)
-        if boot:
-            unc = uncertainty(ms, opened[0], None, opts=opts, novel=opts.novel)
-            pres_layers.update({n: unc[n].data for n in PRESENT_BOUNDS})
-        stats = climate_stats(pres_ds, pres_ds, _present_zone(pres_ds), area, layouts)
-        valid = [valid_counts(opened[0][f].data) for f in used]
-        w, vec = _write_climate(comp, stage, grid, cl[0], pres_layers, ms, factor_lists, stats, valid, opts.chunk, used, progress, novel_rule(ms, opts.novel))
-        written += w
-        r, _ = _stats_rows(ms, cl[0], vec, layouts)
-        rows += r
-        timings["present"] = time.perf_counter() - t0
-        say(f"[1/{len(cl)}] present ({cl[0].period}): {len(w)} files in {timings['present']:.1f} s")
-        back = xr.Dataset(
-            {
-                "ceiling": (("species", "y", "x"), da.stack([_read_back(stage / layer_path(m.species, cl[0].key, "ceiling"), grid, opts.chunk, code=False) for m in ms]).rechunk({0: -1})),
-                "limiting": (("species", "y", "x"), da.stack([_read_back(stage / layer_path(m.species, cl[0].key, "limiting"), grid, opts.chunk, code=True) for m in ms]).rechunk({0: -1})),
-            }
-        )
-        for j, (c, lay) in enumerate(zip(cl[1:], opened[1:]), start=2):
+    for m in ms:
+        check_reference(m.reference or {}, m.factor_names, species=m.species)
+    boot = has_replicates(ms)
+    check_free_space(stage, output_bytes(grid, len(ms), cl, bootstrap=boot), what="the projection's maps")
+    policy = tuple(with_policy(ms, opts.novel))
+    params = tuple(ChunkParams(opts.release_threshold, opts.constraint_threshold, opts.absolute_floor, opts.zero_level,
+                               opts.novel, lay.hist_bins, lay.hist_max, lay.n_zones) for lay in layouts)
+    rule = novel_rule(ms, opts.novel)
+    nc, nc_spec = _netcdf(stage, grid, ms, cl, opts, cfg, boot)
+    present_names = PRESENT_LAYERS + (PRESENT_BOUNDS if boot else ())
+    future_names = FUTURE_LAYERS + (FUTURE_BOUNDS if boot else ())
+    # per run, not process-wide: GDAL's block cache for the reads and writes of this process
+    with rasterio.Env(GDAL_CACHEMAX=opts.gdal_cache_mb), \
+            compute_context(workers=workers, address=address, threads=threads) as comp:
+        try:
             t0 = time.perf_counter()
-            fut = project(ms, lay, mask=mask, novel=opts.novel)
-            cmp = compare(back, fut, n_factors=[len(m.factors) for m in ms], opts=opts)
-            maps = {"ceiling": fut["ceiling"].data, "change": cmp["change"].data, "change_pct": cmp["change_pct"].data,
-                    "limiting": fut["limiting"].data, "zone": cmp["zone"].data, "switch": cmp["switch"].data,
-                    **{n: fut[n].data for n in ("novelty", "novel_factor", "extrapolated")}}
-            stats = climate_stats(back, fut, cmp, area, layouts)
-            valid = [valid_counts(lay[f].data) for f in used]
-            layers_out = {n: maps[n] for n in FUTURE_LAYERS}
-            if boot:
-                unc = uncertainty(ms, opened[0], lay, opts=opts, novel=opts.novel)
-                layers_out.update({n: unc[n].data for n in FUTURE_BOUNDS})
-            w, vec = _write_climate(comp, stage, grid, c, layers_out, ms, factor_lists, stats, valid, opts.chunk, used, progress, novel_rule(ms, opts.novel))
+            nc.write_areas(lambda r, c: window_areas(grid, r, c))
+            readers = tuple((f, opened[0][f]) for f in used)
+            plan = ClimatePlan(grid, readers, policy, params,
+                               map_specs(len(ms), present_names, grid, opts.chunk, netcdf=nc_spec(None)),
+                               mask=None if mask is None else mask.data, bootstrap=opts if boot else None, nc_chunk=nc.chunk_shape)
+            w, vec = write_climate(comp, stage, grid, cl[0], plan, species=species, factor_lists=factor_lists,
+                                   chunk=opts.chunk, used=used, n_stats=len(ms), nc=nc, novel=rule, say=progress)
             written += w
-            r, t = _stats_rows(ms, c, vec, layouts)
+            r, _ = _stats_rows(ms, cl[0], vec, layouts)
             rows += r
-            trans += t
-            timings["/".join(c.key)] = time.perf_counter() - t0
-            say(f"[{j}/{len(cl)}] {c.label}: {len(w)} files in {timings['/'.join(c.key)]:.1f} s")
+            timings["present"] = time.perf_counter() - t0
+            say(f"[1/{len(cl)}] present ({cl[0].period}): {len(w)} files in {timings['present']:.1f} s")
+            back = tuple((readback_reader(stage / layer_path(sp, cl[0].key, "ceiling"), grid),
+                          readback_reader(stage / layer_path(sp, cl[0].key, "limiting"), grid)) for sp in species)
+            for j, (c, lay) in enumerate(zip(cl[1:], opened[1:]), start=2):
+                t0 = time.perf_counter()
+                plan = ClimatePlan(grid, tuple((f, lay[f]) for f in used), policy, params,
+                                   map_specs(len(ms), future_names, grid, opts.chunk, netcdf=nc_spec(j - 2)),
+                                   present=back, mask=None if mask is None else mask.data,
+                                   bootstrap=opts if boot else None, boot_readers=readers if boot else None,
+                                   nc_chunk=nc.chunk_shape)
+                w, vec = write_climate(comp, stage, grid, c, plan, species=species, factor_lists=factor_lists,
+                                       chunk=opts.chunk, used=used, n_stats=len(ms), nc=nc, novel=rule, say=progress)
+                written += w
+                r, t = _stats_rows(ms, c, vec, layouts)
+                rows += r
+                trans += t
+                timings["/".join(c.key)] = time.perf_counter() - t0
+                say(f"[{j}/{len(cl)}] {c.label}: {len(w)} files in {timings['/'.join(c.key)]:.1f} s")
+            t0 = time.perf_counter()
+            written.append(nc.close())
+            timings["netcdf"] = time.perf_counter() - t0
+        except BaseException:
+            nc.discard()
+            raise
         for sc, pe, members, missing in ensemble_groups(cl[1:], opts.ensemble_min_models, warn=notes.append):
             t0 = time.perf_counter()
             ens = Climate(sc, ENSEMBLE, pe, {})
-            layers = _ensemble_layers(stage, grid, ms, back, members, opts)
-            estats = [_ensemble_stats(layers["zone"][i], layers["robustness"][i], layers["agreement"][i], area) for i in range(len(ms))]
-            w, vec = _write_climate(comp, stage, grid, ens, layers, ms, factor_lists, estats, [], opts.chunk, used, progress,
-                                    novel_rule(ms, opts.novel), ensemble=True)
+            plan = _ensemble_plan(stage, grid, ms, back, members, opts)
+            w, vec = write_climate(comp, stage, grid, ens, plan, species=species, factor_lists=factor_lists,
+                                   chunk=opts.chunk, n_stats=len(ms), novel=rule, ensemble=True, say=progress)
             written += w
             rows += _ensemble_rows(ms, ens, vec, members, missing)
             timings["/".join(ens.key)] = time.perf_counter() - t0
             say(f"ensemble {sc} / {pe} ({len(members)} models): {len(w)} files in {timings['/'.join(ens.key)]:.1f} s")
-        t0 = time.perf_counter()
-        written.append(_netcdf(stage, grid, ms, cl, area, opts, cfg))
-        timings["netcdf"] = time.perf_counter() - t0
-        say(f"wrote {NETCDF_FILE} in {timings['netcdf']:.1f} s")
         summary = pd.DataFrame(rows)
         transitions = pd.DataFrame(trans)
         written.append(atomic_write_text(stage / SUMMARY_FILE, summary.to_csv(index=False, float_format="%.6g")))
         written.append(atomic_write_text(stage / TRANSITIONS_FILE, transitions.to_csv(index=False, float_format="%.6g")))
         run = ProjectionRun(cl, grid, summary, transitions, written, timings, comp.describe(), notes)
     return run
-
-
-def _present_zone(ds: xr.Dataset) -> xr.Dataset:
-    from .kernels import ABSENT, STABLE
-
-    c = ds["ceiling"].data
-    z = da.where(da.isnan(c), NODATA_CODE, da.where(c > 0, STABLE, ABSENT)).astype(np.uint8)
-    return xr.Dataset({"zone": (("species", "y", "x"), z)})
 
 
 def _mask(opts: ProjectionOptions, grid: GridSpec, cfg: RunConfig) -> xr.DataArray | None:
@@ -458,9 +298,10 @@ def _mask(opts: ProjectionOptions, grid: GridSpec, cfg: RunConfig) -> xr.DataArr
     return open_mask(p if p.is_absolute() else base / p, grid, chunk=opts.chunk)
 
 
-def _netcdf(stage: Path, grid: GridSpec, ms: list[CeilingModel], cl: list[Climate], area: da.Array,
-            opts: ProjectionOptions, cfg: RunConfig) -> Path:
-    """Assemble the run's NetCDF from the maps just written (lazy, chunk by chunk)."""
+def _netcdf(stage: Path, grid: GridSpec, ms: list[CeilingModel], cl: list[Climate], opts: ProjectionOptions,
+            cfg: RunConfig, boot: bool) -> tuple[NetcdfWriter, Callable[[int | None], Callable]]:
+    """Lay out the run's NetCDF; return its writer and, per climate (None: the present; j: the
+    j-th future), the function that names each map's variable, index and code recoding."""
     # Each species' GeoTIFF codes index that model's own factor list (m.factor_names, the
     # factors in its minimum). When factor screening leaves species with different lists, the
     # NetCDF's codes index the config's factor list instead, remapped here; with one shared
@@ -481,32 +322,31 @@ def _netcdf(stage: Path, grid: GridSpec, ms: list[CeilingModel], cl: list[Climat
                 for b, gb in enumerate(where):
                     sw[a * k + b] = ga * big + gb
             luts[i], switch_luts[i] = lut, sw
-
-    def _recode(arr: da.Array, name: str, i: int) -> da.Array:
-        table = switch_luts[i] if name == "switch" else luts[i] if name in ("limiting", "novel_factor") else None
-        if table is None:
-            return arr
-        return arr.map_blocks(lambda b, t=table: t[b], dtype=np.uint8)
-
-    layers: dict[str, Any] = {}
-    boot = has_replicates(ms)
+    variables = []
     for name in PRESENT_LAYERS + (PRESENT_BOUNDS if boot else ()):
-        dtype, long_name, units = LAYER_META[name]
-        arrs = [_recode(_read_back(stage / layer_path(m.species, cl[0].key, name), grid, opts.chunk, code=dtype == "uint8"), name, i)
-                for i, m in enumerate(ms)]
-        layers[f"{name}_present"] = (da.stack(arrs), f"{long_name}, present", units, layer_categories(name, factors))
-    futures = cl[1:]
-    if futures:
+        _, long_name, units = LAYER_META[name]
+        variables.append(NetcdfVariable(f"{name}_present", f"{long_name}, present", units,
+                                        layer_categories(name, factors), True))
+    if len(cl) > 1:
         for name in FUTURE_LAYERS + (FUTURE_BOUNDS if boot else ()):
-            dtype, long_name, units = LAYER_META[name]
-            arrs = [da.stack([_recode(_read_back(stage / layer_path(m.species, c.key, name), grid, opts.chunk, code=dtype == "uint8"), name, i)
-                              for c in futures]) for i, m in enumerate(ms)]
-            layers[name] = (da.stack(arrs), long_name, units, layer_categories(name, factors))
-    return write_netcdf(
-        stage / NETCDF_FILE, grid=grid, species=[m.species for m in ms], futures=[c.key for c in futures],
-        layers=layers, area=area, attrs={"title": f"ceilings of species abundance: {cfg.name}",
-                                         "present_period": cl[0].period, "novel_cells": novel_rule(ms, opts.novel)},
+            _, long_name, units = LAYER_META[name]
+            variables.append(NetcdfVariable(name, long_name, units, layer_categories(name, factors), False))
+    writer = create_netcdf(
+        stage / NETCDF_FILE, grid=grid, species=[m.species for m in ms], futures=[c.key for c in cl[1:]],
+        variables=variables, chunk=opts.chunk,
+        attrs={"title": f"ceilings of species abundance: {cfg.name}", "present_period": cl[0].period,
+               "novel_cells": novel_rule(ms, opts.novel)},
     )
+
+    def spec(j: int | None) -> Callable:
+        def one(i: int, layer: str):
+            lut = switch_luts[i] if layer == "switch" else luts[i] if layer in ("limiting", "novel_factor") else None
+            if j is None:
+                return f"{layer}_present", (i,), lut
+            return layer, (i, j), lut
+        return one
+
+    return writer, spec
 
 
 @dataclass
@@ -631,45 +471,13 @@ def ensemble_groups(futures: Sequence[Climate], min_models: int, *, warn: Callab
         yield sc, pe, members, missing
 
 
-def _ensemble_layers(stage: Path, grid: GridSpec, ms: list[CeilingModel], back: xr.Dataset, members: list[Climate],
-                     opts: ProjectionOptions) -> dict[str, da.Array]:
-    from .ensemble import ensemble_kernel
-
-    names = ENSEMBLE_LAYERS
-    per_species = []
-    for i, m in enumerate(ms):
-        fut = da.stack([_read_back(stage / layer_path(m.species, c.key, "ceiling"), grid, opts.chunk, code=False) for c in members])
-        lim = da.stack([_read_back(stage / layer_path(m.species, c.key, "limiting"), grid, opts.chunk, code=True) for c in members])
-        k = len(m.factors)
-
-        def block(p, f, lim_block, k=k):
-            r = ensemble_kernel(p, f, lim_block, k, robust=opts.agreement_threshold, release=opts.release_threshold,
-                                constraint=opts.constraint_threshold, floor=opts.absolute_floor, zero=opts.zero_level)
-            return np.stack([r[n].astype(np.float32) for n in names])
-
-        out = da.map_blocks(block, back["ceiling"].data[i], fut.rechunk({0: -1}), lim.rechunk({0: -1}),
-                            chunks=((len(names),), *back["ceiling"].data[i].chunks), dtype=np.float32,
-                            meta=np.empty((0, 0, 0), np.float32))
-        per_species.append(out)
-    layers = {}
-    for j, n in enumerate(names):
-        arr = da.stack([o[j] for o in per_species])
-        layers[n] = arr.astype(np.uint8) if LAYER_META[n][0] == "uint8" else arr
-    return layers
-
-
-def _ensemble_stats(zone: da.Array, robust: da.Array, agreement: da.Array, area: da.Array) -> da.Array:
-    def block(z, r, a, w):
-        ok = z != NODATA_CODE
-        v = np.zeros(10)
-        v[:7] = np.bincount(z[ok], weights=w[ok], minlength=7)[:7]
-        v[7] = w[ok & (r == 1)].sum()
-        v[8] = w[ok].sum()
-        v[9] = (np.nan_to_num(a[ok]) * w[ok]).sum()
-        return v[None, None, :]
-
-    return da.map_blocks(block, zone, robust, agreement, area, new_axis=2,
-                         chunks=(tuple(1 for _ in area.chunks[0]), tuple(1 for _ in area.chunks[1]), (10,)), dtype=np.float64)
+def _ensemble_plan(stage: Path, grid: GridSpec, ms: list[CeilingModel], back, members: list[Climate],
+                   opts: ProjectionOptions) -> EnsemblePlan:
+    readers = tuple(tuple((readback_reader(stage / layer_path(m.species, c.key, "ceiling"), grid),
+                           readback_reader(stage / layer_path(m.species, c.key, "limiting"), grid)) for c in members)
+                    for m in ms)
+    return EnsemblePlan(grid, tuple(b[0] for b in back), readers, tuple(len(m.factors) for m in ms), opts,
+                        map_specs(len(ms), ENSEMBLE_LAYERS, grid, opts.chunk))
 
 
 def _ensemble_rows(ms, ens: Climate, vectors, members, missing) -> list[dict]:

@@ -6,22 +6,26 @@ Layout (CF-1.10): dimensions ``species``, ``climate``, ``y``, ``x``. The present
 ``scenario``, ``climate_model`` and ``period`` (a documented equivalent of separate scenario /
 model / period dimensions, which would be sparse when not every combination exists).
 Categorical variables carry ``flag_values`` / ``flag_meanings``; every map names the grid
-mapping variable ``crs`` and the cell measure ``cell_area`` (m2). The file is assembled lazily
-from the written GeoTIFFs and written with netCDF4 directly, one HDF5 chunk after another in a
-fixed order (so repeated runs give byte-identical files), under a temporary name, then renamed.
+mapping variable ``crs`` and the cell measure ``cell_area`` (m2).
+
+Writing: :func:`create_netcdf` lays out the file with netCDF4 (dimensions, coordinates,
+attributes; no map data) under a temporary name. The maps are then written as whole HDF5 chunks
+already compressed (:func:`encode_chunk`: the byte shuffle and deflate that the variables
+declare), by the projection's chunk tasks, in parallel; :class:`NetcdfWriter` stores them with
+HDF5's direct chunk write, in a fixed order (HDF5 places chunks in the order they arrive, so a
+fixed order gives byte-identical files from run to run, whatever the scheduler did).
+:meth:`NetcdfWriter.close` renames the file into place.
 """
 
 from __future__ import annotations
 
-import itertools
 import os
 import re
 from collections.abc import Sequence
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-import dask
-import dask.array as da
 import netCDF4
 import numpy as np
 from pyproj import CRS
@@ -31,9 +35,12 @@ from ..categories import Category
 from .atomic import tmp_name
 from .geotiff import FLOAT_NODATA
 
-__all__ = ["write_netcdf", "flag_meaning"]
+__all__ = ["create_netcdf", "NetcdfWriter", "NetcdfVariable", "encode_chunk", "chunk_side", "flag_meaning"]
 
-CHUNK_CACHE_BYTES = 4 * 1024 * 1024
+# deflate level declared in the variables' filters (zlib semantics); the streams are written by
+# ISA-L at its level 1, which compresses these maps as well as zlib at 1-4 (a zlib reader decodes both)
+DEFLATE_LEVEL = 1
+ISAL_LEVEL = 1
 
 
 def flag_meaning(name: str) -> str:
@@ -52,28 +59,72 @@ def _axis_attrs(crs: CRS) -> tuple[dict[str, str], dict[str, str]]:
             {"standard_name": "projection_y_coordinate", "long_name": "y coordinate", "units": unit, "axis": "Y"})
 
 
-def write_netcdf(
-    path: Path,
-    *,
-    grid: Any,
-    species: Sequence[str],
-    futures: Sequence[tuple[str, str, str]],
-    layers: dict[str, tuple[Any, str, str, tuple[Category, ...] | None]],
-    area: da.Array,
-    attrs: dict[str, str],
-) -> Path:
-    """Write ``layers``: name -> (lazy array, long name, units, categories or None).
+def chunk_side(chunk: int) -> int:
+    """HDF5 chunk side for a projection chunk: the largest power of two (16..256) dividing it."""
+    t = 256
+    while t > 16 and chunk % t:
+        t //= 2
+    return t
 
-    Arrays are (species, y, x) for names ending in ``_present`` and (species, climate, y, x)
-    otherwise.
-    """
+
+def _compress(data: bytes) -> bytes:
+    try:
+        from isal import isal_zlib  # ISA-L: zlib streams several times faster than zlib itself
+
+        return isal_zlib.compress(data, ISAL_LEVEL)
+    except ImportError:  # pragma: no cover - isal is a dependency; zlib gives the same format
+        import zlib
+
+        return zlib.compress(data, DEFLATE_LEVEL)
+
+
+def encode_chunk(block: np.ndarray, shape: tuple[int, int], fill: Any) -> bytes:
+    """One HDF5 chunk as stored: padded to ``shape`` with ``fill``, byte-shuffled and deflated
+    (a zlib stream), as the variables' filters (shuffle, deflate) expect."""
+    h, w = block.shape[-2:]
+    if (h, w) != tuple(shape):
+        full = np.full(shape, fill, dtype=block.dtype)
+        full[:h, :w] = block
+        block = full
+    raw = np.ascontiguousarray(block)
+    size = raw.dtype.itemsize
+    if size > 1:
+        raw = np.ascontiguousarray(raw.view(np.uint8).reshape(-1, size).T)
+    return _compress(raw.tobytes())
+
+
+@dataclass(frozen=True)
+class NetcdfVariable:
+    """One map variable: ``present`` ones are (species, y, x), the others (species, climate, y, x)."""
+
+    name: str
+    long_name: str
+    units: str
+    categories: tuple[Category, ...] | None
+    present: bool
+
+    @property
+    def dtype(self) -> np.dtype:
+        return np.dtype(np.float32 if self.categories is None else np.uint8)
+
+    @property
+    def fill(self) -> Any:
+        return np.float32(FLOAT_NODATA) if self.categories is None else np.uint8(255)
+
+
+def create_netcdf(
+    path: Path, *, grid: Any, species: Sequence[str], futures: Sequence[tuple[str, str, str]],
+    variables: Sequence[NetcdfVariable], attrs: dict[str, str], chunk: int,
+) -> NetcdfWriter:
+    """Lay out the run's NetCDF (no map data yet) and return the writer that fills it."""
     pcrs = CRS.from_wkt(grid.crs_wkt)
     c = grid.coords()
     xattrs, yattrs = _axis_attrs(pcrs)
     gm = pcrs.to_cf()
     gm["crs_wkt"] = grid.crs_wkt
     h, w = grid.height, grid.width
-    ch, cw = min(256, h), min(256, w)
+    side = chunk_side(chunk)
+    cs = (min(side, h), min(side, w))  # HDF5 chunks may not exceed a fixed dimension
     gattrs = {
         "Conventions": "CF-1.10",
         "title": attrs.get("title", "ceilings of species abundance"),
@@ -86,9 +137,6 @@ def write_netcdf(
     }
     tmp = tmp_name(path)
     try:
-        # with a small HDF5 chunk cache: the default is per variable, so it would grow with the
-        # number of variables up to hundreds of MB
-        netCDF4.set_chunk_cache(CHUNK_CACHE_BYTES, 1009, 0.75)
         with netCDF4.Dataset(tmp, "w", format="NETCDF4") as nc:
             nc.setncatts(gattrs)
             nc.createDimension("y", h)
@@ -99,32 +147,24 @@ def write_netcdf(
             v = nc.createVariable("crs", "i4", ())
             v.setncatts(gm)
             v.assignValue(np.int32(0))
-            v = nc.createVariable("cell_area", "f8", ("y", "x"), zlib=True, complevel=4, shuffle=True,
-                                  chunksizes=(ch, cw), fill_value=np.float64(np.nan))
+            v = nc.createVariable("cell_area", "f8", ("y", "x"), zlib=True, complevel=DEFLATE_LEVEL, shuffle=True,
+                                  chunksizes=cs, fill_value=np.float64(np.nan))
             v.setncatts({"standard_name": "cell_area", "long_name": "area of the grid cell on the ellipsoid",
                          "units": "m2", "grid_mapping": "crs"})
-            _write_blocks(v, area, (), h, w, ch, cw, np.float64)
-            for name, (arr, long_name, units, cats) in layers.items():
-                present = name.endswith("_present")
-                dims = ("species", "y", "x") if present else ("species", "climate", "y", "x")
-                a: dict[str, Any] = {"long_name": long_name, "grid_mapping": "crs", "cell_measures": "area: cell_area"}
-                if cats is None:
-                    a["units"] = units
-                    fill: Any = np.float32(FLOAT_NODATA)
-                    dtype = np.dtype(np.float32)
+            for var in variables:
+                dims = ("species", "y", "x") if var.present else ("species", "climate", "y", "x")
+                a: dict[str, Any] = {"long_name": var.long_name, "grid_mapping": "crs",
+                                     "cell_measures": "area: cell_area"}
+                if var.categories is None:
+                    a["units"] = var.units
                 else:
-                    a["flag_values"] = np.array([k.code for k in cats], dtype=np.uint8)
-                    a["flag_meanings"] = " ".join(flag_meaning(k.name) for k in cats)
-                    fill = np.uint8(255)
-                    dtype = np.dtype(np.uint8)
+                    a["flag_values"] = np.array([k.code for k in var.categories], dtype=np.uint8)
+                    a["flag_meanings"] = " ".join(flag_meaning(k.name) for k in var.categories)
                 # auxiliary string coordinates (CF: named in 'coordinates', sorted as before)
-                a["coordinates"] = "species_name" if present else "climate_model period scenario species_name"
-                var = nc.createVariable(name, dtype, dims, zlib=True, complevel=4, shuffle=True,
-                                        chunksizes=tuple(1 for _ in dims[:-2]) + (ch, cw), fill_value=fill)
-                var.setncatts(a)
-                lead = [range(n) for n in arr.shape[:-2]]
-                for idx in itertools.product(*lead):
-                    _write_blocks(var, arr[idx], idx, h, w, ch, cw, dtype, fill=fill if cats is None else None)
+                a["coordinates"] = "species_name" if var.present else "climate_model period scenario species_name"
+                v = nc.createVariable(var.name, var.dtype, dims, zlib=True, complevel=DEFLATE_LEVEL, shuffle=True,
+                                      chunksizes=tuple(1 for _ in dims[:-2]) + cs, fill_value=var.fill)
+                v.setncatts(a)
             v = nc.createVariable("x", "f8", ("x",), fill_value=False)
             v.setncatts(xattrs)
             v[:] = c["x"]
@@ -139,34 +179,50 @@ def write_netcdf(
                 _strings(nc, "scenario", "climate", [f[0] for f in futures], "emission scenario")
                 _strings(nc, "climate_model", "climate", [f[1] for f in futures], "climate model")
                 _strings(nc, "period", "climate", [f[2] for f in futures], "period")
-        os.replace(tmp, path)
-    finally:
-        if tmp.exists():
-            tmp.unlink()
-    return path
+    except BaseException:
+        tmp.unlink(missing_ok=True)
+        raise
+    return NetcdfWriter(path, tmp, cs, grid)
+
+
+class NetcdfWriter:
+    """Stores encoded HDF5 chunks (see :func:`encode_chunk`) into the laid-out file, in the
+    order given; :meth:`close` renames the file into place, :meth:`discard` removes it."""
+
+    def __init__(self, path: Path, tmp: Path, chunk_shape: tuple[int, int], grid: Any) -> None:
+        import h5py
+
+        self.path, self.tmp, self.chunk_shape, self.grid = Path(path), Path(tmp), chunk_shape, grid
+        self._h5 = h5py.File(self.tmp, "r+")
+
+    def write(self, name: str, lead: tuple[int, ...], row: int, col: int, data: bytes) -> None:
+        """Store one encoded chunk of ``name`` at ``lead`` (species[, climate]) whose first cell is
+        (``row``, ``col``) (multiples of the chunk side)."""
+        self._h5[name].id.write_direct_chunk((*lead, row, col), data, 0)
+
+    def write_areas(self, area_block: Any) -> None:
+        """``cell_area``: ``area_block(rows, cols)`` gives the areas of a window."""
+        h, w = self.grid.height, self.grid.width
+        ch, cw = self.chunk_shape
+        for r0 in range(0, h, ch):
+            for c0 in range(0, w, cw):
+                rows, cols = slice(r0, min(h, r0 + ch)), slice(c0, min(w, c0 + cw))
+                block = np.asarray(area_block(rows, cols), dtype=np.float64)
+                self.write("cell_area", (), r0, c0, encode_chunk(block, self.chunk_shape, np.float64(np.nan)))
+
+    def close(self) -> Path:
+        self._h5.close()
+        os.replace(self.tmp, self.path)
+        return self.path
+
+    def discard(self) -> None:
+        try:
+            self._h5.close()
+        finally:
+            self.tmp.unlink(missing_ok=True)
 
 
 def _strings(nc: Any, name: str, dim: str, values: list[str], long_name: str) -> None:
     v = nc.createVariable(name, str, (dim,))
     v.setncatts({"long_name": long_name})
     v[:] = np.array(values, dtype=object)
-
-
-def _write_blocks(var: Any, arr: Any, lead: tuple[int, ...], h: int, w: int, ch: int, cw: int, dtype: Any,
-                  fill: Any = None) -> None:
-    """Write a (y, x) lazy array into ``var[lead]``, one HDF5 chunk after another, row by row.
-
-    Every HDF5 chunk is computed and written exactly once, in a fixed order: HDF5 places chunks
-    in the order they arrive, so writing the same data in a different order (a parallel write,
-    or dask tasks ordered by key names that contain the run's staging path) gives a different,
-    equally valid byte layout. In this order repeated runs give byte-identical files.
-    """
-    for r0 in range(0, h, ch):
-        for c0 in range(0, w, cw):
-            r1, c1 = min(r0 + ch, h), min(c0 + cw, w)
-            with dask.config.set(scheduler="synchronous"):
-                block = np.asarray(arr[r0:r1, c0:c1].compute() if hasattr(arr, "compute") else arr[r0:r1, c0:c1])
-            block = block.astype(dtype, copy=False)
-            if fill is not None:  # float maps: NaN is stored as the declared _FillValue
-                block = np.where(np.isnan(block), fill, block).astype(dtype, copy=False)
-            var[(*lead, slice(r0, r1), slice(c0, c1))] = block
