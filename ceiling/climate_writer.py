@@ -91,11 +91,14 @@ def write_climate(
     comp: Compute, stage: Path, grid: GridSpec, climate: Climate, plan: Any, *, species: Sequence[str],
     factor_lists: Sequence[Sequence[str]], chunk: int, used: Sequence[str] = (), n_stats: int,
     nc: NetcdfWriter | None = None, novel: str = "", ensemble: bool = False,
-    say: Callable[[str], None] | None = None,
+    say: Callable[[str], None] | None = None, record: bool = True,
 ) -> tuple[list[Path], list[np.ndarray]]:
-    """Compute and write every map of one climate; return the files and the summary vectors."""
-    record = stage / done_record_name(climate.key)
-    reused = _reuse_climate(record, stage, n_stats)
+    """Compute and write every map of one climate; return the files and the summary vectors.
+
+    With ``record`` (the default) a completion record makes the climate reusable by ``--resume``.
+    """
+    done = stage / done_record_name(climate.key)
+    reused = _reuse_climate(done, stage, n_stats) if record else None
     if reused is not None:
         if say is not None:
             say(f"      {climate.label}: reused {len(reused[0])} complete files (--resume)")
@@ -128,7 +131,8 @@ def write_climate(
         for s in streams:
             s.discard()
         raise
-    _write_done_record(record, stage, written, stats)
+    if record:
+        _write_done_record(done, stage, written, stats)
     return written, stats
 
 

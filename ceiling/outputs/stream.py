@@ -122,6 +122,7 @@ class MapStream:
         self.nodata = CODE_NODATA if self.dtype == "uint8" else FLOAT_NODATA
         tile = stream_tile(self.chunk)
         profile = dict(driver="GTiff", width=width, height=height, count=1, dtype=self.dtype, nodata=self.nodata,
+                       crs=self.grid.crs, transform=self.grid.affine,
                        tiled=True, blockxsize=tile, blockysize=tile, compress="none", SPARSE_OK="TRUE",
                        BIGTIFF="IF_SAFER")
         with rasterio.Env(GDAL_PAM_ENABLED="NO"), rasterio.open(self.path, "w", **profile):

@@ -1,0 +1,76 @@
+"""The whole-grid approach a user would write by hand, for comparison with ``ceiling project``.
+
+    python -m bench.naive CONFIG OUT FUTURES
+
+Every layer of a climate is opened whole with rioxarray, the maps are computed with NumPy
+expressions over the whole grid (the law of the minimum over a stack of predictors, MESS with
+``searchsorted``, change, zone and switch), and written with rioxarray (GeoTIFF, COG driver,
+deflate with a predictor, all cores) and xarray (one NetCDF per climate, deflate level 1 with
+shuffle): the same maps, formats and codec settings as the projection, without its summary
+tables, figures and report.
+"""
+
+from __future__ import annotations
+
+import sys
+from pathlib import Path
+
+import numpy as np
+
+
+def ceiling_plain(m, values: dict[str, np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
+    """The law of the minimum as one writes it in NumPy: full-size float64 stacks."""
+    eta = np.stack([f.basis.predictor(np.clip(values[f.factor], *f.observed), f.params) for f in m.factors])
+    c = np.maximum(eta, 0.0).min(axis=0)
+    code = np.argmin(np.where(np.isnan(eta), np.inf, eta), axis=0).astype(np.uint8)
+    bad = np.isnan(eta).any(axis=0)
+    return np.where(bad, np.nan, c).astype(np.float32), np.where(bad, 255, code).astype(np.uint8)
+
+
+def naive(cfg_path: Path, out: Path, n_fut: int) -> None:
+    import rioxarray
+    import xarray as xr
+
+    from ceiling.kernels import change_kernel, switch_kernel, zone_kernel
+    from ceiling.model import load_model
+    from ceiling.novelty import mess_kernel
+
+    from .inputs import K, PERIODS
+
+    m = load_model(cfg_path.parent / "model.json")
+    root = cfg_path.parent
+    climates = [("present", root / "present")] + [(PERIODS[i], root / "future" / PERIODS[i]) for i in range(n_fut)]
+    present = None
+    for name, folder in climates:
+        layers = {f: rioxarray.open_rasterio(folder / f"{f}.tif", masked=True).squeeze("band", drop=True).load()
+                  for f in m.factor_names}
+        tpl = layers[m.factor_names[0]]
+        values = {f: a.values.astype(np.float64) for f, a in layers.items()}
+        c, code = ceiling_plain(m, values)
+        mess, far = mess_kernel([values[f] for f in m.factor_names], [m.reference[f] for f in m.factor_names])
+        maps = {"ceiling": c, "limiting": code, "novelty": mess.astype(np.float32),
+                "novel_factor": far.astype(np.uint8),
+                "extrapolated": np.where(np.isnan(mess), 255, mess < 0).astype(np.uint8)}
+        if present is None:
+            present = (c, code)
+        else:
+            ch, pct = change_kernel(present[0], c)
+            maps.update(change=ch, change_pct=pct, zone=zone_kernel(present[0], c), switch=switch_kernel(present[1], code, K))
+        (out / name).mkdir(parents=True, exist_ok=True)
+        ds = {}
+        for lname, arr in maps.items():
+            nodata = 255 if arr.dtype == np.uint8 else np.float32(-3.4028234663852886e38)
+            if arr.dtype != np.uint8:
+                arr = np.where(np.isnan(arr), nodata, arr).astype(np.float32)
+            da_ = xr.DataArray(arr, dims=("y", "x"), coords={"y": tpl.y, "x": tpl.x})
+            da_ = da_.rio.write_crs(tpl.rio.crs).rio.write_transform(tpl.rio.transform()).rio.write_nodata(nodata)
+            da_.rio.to_raster(out / name / f"{lname}.tif", driver="COG", compress="DEFLATE", predictor="YES",
+                              num_threads="ALL_CPUS")
+            ds[lname] = da_
+        xr.Dataset(ds).to_netcdf(out / name / "maps.nc", encoding={
+            v: {"zlib": True, "complevel": 1, "shuffle": True, "chunksizes": (256, 256)} for v in ds})
+        del layers, values, maps, ds
+
+
+if __name__ == "__main__":
+    naive(Path(sys.argv[1]), Path(sys.argv[2]), int(sys.argv[3]))
