@@ -12,9 +12,29 @@ try:
 except PackageNotFoundError:  # running from a source tree that is not installed
     __version__ = "0.1.0"
 
-from .boundary import FactorCeiling, fit_factor, quantile_fit  # noqa: E402
-from .config import RunConfig, load_config  # noqa: E402
-from .model import CeilingModel, FactorSpec, ModelSet, fit, load_model, load_models  # noqa: E402
+# the public names are imported on first use, so that commands start without loading the
+# fitting stack (statsmodels, scipy.stats) when they do not fit
+_LAZY = {
+    "FactorCeiling": "boundary", "fit_factor": "boundary", "quantile_fit": "boundary",
+    "RunConfig": "config", "load_config": "config",
+    "CeilingModel": "model", "FactorSpec": "model", "ModelSet": "model", "fit": "model", "load_model": "model",
+    "load_models": "model",
+}
+
+
+def __getattr__(name: str):
+    if name in _LAZY:
+        import importlib
+
+        value = getattr(importlib.import_module(f".{_LAZY[name]}", __name__), name)
+        globals()[name] = value
+        return value
+    raise AttributeError(f"module 'ceiling' has no attribute {name!r}")
+
+
+def __dir__() -> list[str]:
+    return sorted(__all__)
+
 
 __all__ = [
     "__version__",

@@ -21,9 +21,9 @@ same rounding to float32); the statistics agree to summation order (the referenc
 
 Novelty needs, per factor, the share of reference values below a cell's value. The reference
 finds it by binary search (``searchsorted``); here a table of counts at evenly spaced values
-(twice as many as reference values) gives the count at the value just below the cell's, and a
-short forward scan in the sorted sample finishes it, so the count is exact and the cost does not
-grow with the size of the sample.
+(eight times as many as reference values) gives the count at a value just below the cell's, and
+a short forward scan in the sorted sample finishes it, so the count is exact and the cost does
+not grow with the size of the sample.
 """
 
 from __future__ import annotations
@@ -67,7 +67,7 @@ class MessTable:
 
     ref: np.ndarray  # (K, N + 4) float64, each row sorted, padded with +inf
     n: np.ndarray  # (K,) int64
-    below: np.ndarray  # (K, M) int64: number of reference values < lo + (i - 1) * width
+    below: np.ndarray  # (K, M) int32: number of reference values < lo + (i - 1) * width
     inv_width: np.ndarray  # (K,) float64
     pct: np.ndarray  # (K, N + 1) float64: 100 i / n, the percentage of values below for a count i
 
@@ -75,16 +75,17 @@ class MessTable:
 def mess_table(refs: list[np.ndarray]) -> MessTable:
     """Count tables for the sorted reference samples ``refs`` (one per factor, model order).
 
-    The range of each factor is cut into M equal bins (M = 2 N). A value p falls in bin
+    The range of each factor is cut into M equal bins (M = 8 N). A value p falls in bin
     b = floor((p - lo) / width); ``below[b]`` counts the reference values under the start of
     the bin before, lo + (b - 1) width, so it never exceeds the count under p, whatever the
-    rounding of b, and the scan from there passes about two bins' worth of values.
+    rounding of b, and the scan from there passes two bins' worth of values (a quarter of a
+    value on average).
     """
     n = np.array([r.size for r in refs], dtype=np.int64)
     big = int(n.max())
-    m = int(min(max(16, 2 * big), 1 << 16))
+    m = int(min(max(16, 8 * big), 1 << 20))
     ref = np.full((len(refs), big + 4), np.inf)
-    below = np.zeros((len(refs), m), dtype=np.int64)
+    below = np.zeros((len(refs), m), dtype=np.int32)
     inv = np.zeros(len(refs))
     pct = np.zeros((len(refs), big + 1))
     for j, r in enumerate(refs):
@@ -176,6 +177,8 @@ def _loop(xs, kind, center, scale, clip, lo, hi, coef, knots, n_knots, transform
     sbest = np.empty(_BLOCK)
     sarg = np.empty(_BLOCK)
     sbad = np.empty(_BLOCK)
+    qs = np.empty(_BLOCK)
+    cnts = np.empty(_BLOCK, dtype=np.int64)
     for r in range(h):
         for b0 in range(0, w, _BLOCK):
             b1 = min(w, b0 + _BLOCK)
@@ -189,67 +192,86 @@ def _loop(xs, kind, center, scale, clip, lo, hi, coef, knots, n_knots, transform
                 kd = kind[j]
                 c2 = coef[j, 2] if kd == 1 else 0.0
                 jj = np.float64(j)
-                # predictors into eb, one tight loop per basis (as kernels_fast._loop)
-                if kd == 1:
+                # the law of the minimum, as kernels_fast._loop: each predictor folded at once
+                # into the running minimum (strict <: the first factor wins ties)
+                if kd == 1 and j == 0:
                     for i in range(m):
                         u = np.float64(x[i])
                         u = lo_j if u < lo_j else u
                         u = hi_j if u > hi_j else u
                         z = (u - ce) / sc
-                        eb[i] = c0 + z * (c1 + z * c2)
-                elif kd == 0:
+                        e = c0 + z * (c1 + z * c2)
+                        best[i] = e
+                        arg[i] = 0.0
+                        bad[i] = 1.0 if e != e else 0.0
+                elif kd == 1:
                     for i in range(m):
                         u = np.float64(x[i])
                         u = lo_j if u < lo_j else u
                         u = hi_j if u > hi_j else u
-                        eb[i] = c0 + c1 * ((u - ce) / sc)
-                else:
-                    for i in range(m):
-                        eb[i] = _predictor(np.float64(x[i]), j, kind, center, scale, clip, lo, hi, coef, knots, n_knots)
-                # the law of the minimum (strict <: the first factor wins ties)
-                if j == 0:
-                    for i in range(m):
-                        e = eb[i]
-                        best[i] = e
-                        arg[i] = 0.0
-                        bad[i] = 1.0 if e != e else 0.0
-                else:
-                    for i in range(m):
-                        e = eb[i]
+                        z = (u - ce) / sc
+                        e = c0 + z * (c1 + z * c2)
                         bad[i] = 1.0 if e != e else bad[i]
                         lower = e < best[i]
                         best[i] = e if lower else best[i]
                         arg[i] = jj if lower else arg[i]
+                else:
+                    if kd == 0:
+                        for i in range(m):
+                            u = np.float64(x[i])
+                            u = lo_j if u < lo_j else u
+                            u = hi_j if u > hi_j else u
+                            eb[i] = c0 + c1 * ((u - ce) / sc)
+                    else:
+                        for i in range(m):
+                            eb[i] = _predictor(np.float64(x[i]), j, kind, center, scale, clip, lo, hi, coef, knots,
+                                               n_knots)
+                    if j == 0:
+                        for i in range(m):
+                            e = eb[i]
+                            best[i] = e
+                            arg[i] = 0.0
+                            bad[i] = 1.0 if e != e else 0.0
+                    else:
+                        for i in range(m):
+                            e = eb[i]
+                            bad[i] = 1.0 if e != e else bad[i]
+                            lower = e < best[i]
+                            best[i] = e if lower else best[i]
+                            arg[i] = jj if lower else arg[i]
                 # novelty (MESS): similarity of the value to the factor's reference sample
                 nj = n_ref[j]
                 rlo, rhi = ref[j, 0], ref[j, nj - 1]
                 span = rhi - rlo
                 iw, nm = inv_width[j], below.shape[1]
+                # the number of reference values below p (searchsorted, side="left"): the count
+                # at the start of the bin before p's, then a step or two forward in the sorted
+                # sample (padded with +inf); in passes over the block, so most of it vectorises
                 for i in range(m):
                     p = np.float64(x[i])
-                    # the number of reference values below p (searchsorted, side="left"), from
-                    # the count at the table edge at or below p and a forward scan (the sample
-                    # is padded with +inf, so the first steps need no bounds check)
                     q = p if (p > rlo and p <= rhi) else rlo  # outside the range the count is 0 or n
+                    qs[i] = q
                     b = int((q - rlo) * iw)
                     b = 0 if b < 0 else (nm - 1 if b > nm - 1 else b)
-                    c0 = below[j, b]  # a lower bound of the count (see mess_table)
-                    # the sample is sorted, so counting the values below q among the next four
-                    # counts the leading ones: no branch to mispredict on noisy fields
-                    cnt = (c0 + np.int64(ref[j, c0] < q) + np.int64(ref[j, c0 + 1] < q)
-                           + np.int64(ref[j, c0 + 2] < q) + np.int64(ref[j, c0 + 3] < q))
-                    while ref[j, cnt] < q:  # rare: more values close together
-                        cnt += 1
+                    c0 = np.int64(below[j, b])
+                    cnts[i] = c0 + np.int64(ref[j, c0] < q)
+                for i in range(m):
+                    c = cnts[i]
+                    if ref[j, c] < qs[i]:  # rare: more values close together
+                        while ref[j, c] < qs[i]:
+                            c += 1
+                        cnts[i] = c
+                for i in range(m):
+                    p = np.float64(x[i])
                     # S as in novelty.similarity, with f = 100 count / n from the table
-                    if p != p:
-                        s = np.nan
-                    elif p <= rlo:  # f = 0
+                    f = pct[j, cnts[i]]
+                    s = 2.0 * f if f <= 50 else 2.0 * (100.0 - f)
+                    if p <= rlo:  # f = 0
                         s = 100.0 * (p - rlo) / span
                     elif p > rhi:  # f = 100
                         s = 100.0 * (rhi - p) / span
-                    else:
-                        f = pct[j, cnt]
-                        s = 2.0 * f if f <= 50 else 2.0 * (100.0 - f)
+                    elif p != p:
+                        s = np.nan
                     if j == 0:
                         sbad[i] = 1.0 if s != s else 0.0
                         sbest[i] = s

@@ -175,35 +175,52 @@ def _loop(xs, kind, center, scale, clip, lo, hi, coef, knots, n_knots, transform
             kd = kind[j]
             c2 = coef[j, 2] if kd == QUADRATIC else 0.0
             jj = np.float64(j)
-            if kd == QUADRATIC:  # predictors of the block into eb: one tight loop per basis
+            # the predictor of each cell folded at once into the running minimum (strict <: the
+            # first factor wins ties); one tight loop per basis and for the first factor
+            if kd == QUADRATIC and j == 0:
                 for i in range(m):
                     v = np.float64(x[i])
                     v = lo_j if v < lo_j else v
                     v = hi_j if v > hi_j else v
                     z = (v - ce) / sc
-                    eb[i] = c0 + z * (c1 + z * c2)
-            elif kd == LINEAR:
+                    e = c0 + z * (c1 + z * c2)
+                    best[i] = e
+                    arg[i] = 0.0
+                    bad[i] = 1.0 if e != e else 0.0
+            elif kd == QUADRATIC:
                 for i in range(m):
                     v = np.float64(x[i])
                     v = lo_j if v < lo_j else v
                     v = hi_j if v > hi_j else v
-                    eb[i] = c0 + c1 * ((v - ce) / sc)
-            else:
-                for i in range(m):
-                    eb[i] = predictor(np.float64(x[i]), j, kind, center, scale, clip, lo, hi, coef, knots, n_knots)
-            if j == 0:  # fold into the running minimum (strict <: the first factor wins ties)
-                for i in range(m):
-                    e = eb[i]
-                    best[i] = e
-                    arg[i] = 0.0
-                    bad[i] = 1.0 if e != e else 0.0
-            else:
-                for i in range(m):
-                    e = eb[i]
+                    z = (v - ce) / sc
+                    e = c0 + z * (c1 + z * c2)
                     bad[i] = 1.0 if e != e else bad[i]
                     lower = e < best[i]
                     best[i] = e if lower else best[i]
                     arg[i] = jj if lower else arg[i]
+            else:
+                if kd == LINEAR:  # predictors of the block into eb, then the same fold
+                    for i in range(m):
+                        v = np.float64(x[i])
+                        v = lo_j if v < lo_j else v
+                        v = hi_j if v > hi_j else v
+                        eb[i] = c0 + c1 * ((v - ce) / sc)
+                else:
+                    for i in range(m):
+                        eb[i] = predictor(np.float64(x[i]), j, kind, center, scale, clip, lo, hi, coef, knots, n_knots)
+                if j == 0:
+                    for i in range(m):
+                        e = eb[i]
+                        best[i] = e
+                        arg[i] = 0.0
+                        bad[i] = 1.0 if e != e else 0.0
+                else:
+                    for i in range(m):
+                        e = eb[i]
+                        bad[i] = 1.0 if e != e else bad[i]
+                        lower = e < best[i]
+                        best[i] = e if lower else best[i]
+                        arg[i] = jj if lower else arg[i]
         oc = out_c[b0:b1]
         ok = out_code[b0:b1]
         if transform == 1:  # back to abundance units, one loop per transform

@@ -1152,7 +1152,7 @@ def _workers(n_tasks: int, workers: int | None) -> int:
     if "fork" not in multiprocessing.get_all_start_methods():
         return 1
     cpus = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
-    return max(1, min(cpus, 4, n_tasks // 8))
+    return max(1, min(cpus, 4, n_tasks // 2))
 
 
 def make_figures(run_dir: str | Path, *, formats: Sequence[str] = ("png",), missing_only: bool = False,

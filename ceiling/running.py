@@ -379,22 +379,42 @@ def project_to_folder(
     With ``resume``, the staging folder of an interrupted run on the same config and inputs is
     kept, and every climate whose completion record matches the files on disk is reused.
     """
-    from .fitting import config_inputs, fit_config, write_fit
-    from .model import load_models
-    from .outputs.folder import check_output_folder, staged_folder
-    from .outputs.manifest import write_manifest
-    from .outputs.names import MANIFEST_FILE, MODEL_FILE
+    from .fitting import config_inputs
+    from .outputs.atomic import Prefetch
+    from .outputs.folder import check_output_folder
 
     t_start = time.perf_counter()
     cl = climates(cfg)
     projection_options(cfg)
     inputs = config_inputs(cfg) + _all_layer_paths(cl) + ([Path(model_path)] if model_path else [])
     # regions and community layers ([outputs.zones], [outputs.community]): a bad table or zones file is refused now
-    from .community import build_community, community_options
-    from .zones import load_zones_config, summarize_zones
+    from .community import community_options
+    from .zones import load_zones_config
     zones_in, community_opts = load_zones_config(cfg), community_options(cfg)
     inputs += [zones_in.source] if zones_in is not None else []
     check_output_folder(out, overwrite=overwrite, inputs=inputs)
+    # the inputs' checksums for the manifest, read beside the projection rather than after it
+    checksums = Prefetch(dict.fromkeys(inputs))
+    try:
+        return _project_to_folder(cfg, out, cl, inputs, checksums, model_path=model_path, overwrite=overwrite,
+                                  workers=workers, address=address, threads=threads, progress=progress, resume=resume,
+                                  zones_in=zones_in, community_opts=community_opts, t_start=t_start)
+    finally:
+        checksums.close(finish=False)
+
+
+def _project_to_folder(cfg: RunConfig, out: Path, cl: list[Climate], inputs: list[Path], checksums: Any, *,
+                       model_path: Path | None, overwrite: bool, workers: int | None, address: str | None,
+                       threads: int | None, progress: Callable[[str], None] | None, resume: bool, zones_in: Any,
+                       community_opts: Any, t_start: float) -> RunResult:
+    from .community import build_community
+    from .fitting import fit_config, write_fit
+    from .model import load_models
+    from .outputs.folder import staged_folder
+    from .outputs.manifest import write_manifest
+    from .outputs.names import MANIFEST_FILE, MODEL_FILE
+    from .zones import summarize_zones
+
     fit_run = None
     if model_path is not None:
         models = load_models(model_path)
@@ -426,6 +446,7 @@ def project_to_folder(
         run.timings["figures_and_report"] = time.perf_counter() - t_report
         if progress:
             progress(f"wrote {n_figures} figures and report.html in {run.timings['figures_and_report']:.1f} s")
+        checksums.close()
         seconds = time.perf_counter() - t_start
         outputs = [p for p in stage.rglob("*") if p.is_file()]
         warnings_list = (list(fit_run.warnings) if fit_run is not None else []) + list(run.warnings)  # fit + projection notes

@@ -14,7 +14,6 @@ from dataclasses import dataclass, replace
 from typing import Any
 
 import numpy as np
-import statsmodels.api as sm
 
 from ..errors import FitError, ModelFileError
 from ..kernels import forward_transform, inverse_transform
@@ -223,6 +222,8 @@ def fit_factor(
                 f"factor '{factor}': binned maxima gave {xb.size} bins with at least "
                 f"{MIN_BIN_POINTS} points, a {basis} curve needs {b.n_params + 1}; use fewer bins"
             )
+        import statsmodels.api as sm
+
         ols = sm.OLS(yb, b.design(xb)).fit()
         params = np.asarray(ols.params, dtype=np.float64)
         bse = np.asarray(ols.bse, dtype=np.float64)

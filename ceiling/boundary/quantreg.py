@@ -12,9 +12,6 @@ import warnings
 from dataclasses import dataclass
 
 import numpy as np
-from statsmodels.regression.quantile_regression import QuantReg
-from statsmodels.tools.sm_exceptions import ConvergenceWarning as SMConvergenceWarning
-from statsmodels.tools.sm_exceptions import IterationLimitWarning
 
 from ..errors import ConfigError, ConvergenceWarning
 
@@ -73,6 +70,11 @@ def quantile_fit(
     X = np.asarray(X, dtype=np.float64)
     if X.ndim != 2 or X.shape[0] != y.shape[0]:
         raise ValueError(f"X must be (n, p) with n = len(y) = {y.shape[0]}; got {X.shape}")
+    # statsmodels is imported when fitting, not when the package is (projection start-up)
+    from statsmodels.regression.quantile_regression import QuantReg
+    from statsmodels.tools.sm_exceptions import ConvergenceWarning as SMConvergenceWarning
+    from statsmodels.tools.sm_exceptions import IterationLimitWarning
+
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         res = QuantReg(y, X).fit(q=float(tau), max_iter=max_iter, p_tol=p_tol)

@@ -6,8 +6,6 @@ from pathlib import Path
 
 import click
 
-from ..config import load_config
-from ..fitting import fit_to_folder
 from .options import (
     bootstrap_opt,
     config_arg,
@@ -28,6 +26,9 @@ from .options import (
 @handle_errors
 def fit(ctx: click.Context, config: Path, out: Path, overwrite: bool, bootstrap: int | None, detail: bool) -> None:
     """Fit per-factor ceilings and write the model file, diagnostics and figures."""
+    from ..config import load_config
+    from ..fitting import fit_to_folder
+
     cfg = with_bootstrap(load_config(config), bootstrap)
     run, written = fit_to_folder(cfg, out, overwrite=overwrite)
     if not ctx.obj.get("quiet"):

@@ -6,8 +6,6 @@ from pathlib import Path
 
 import click
 
-from ..config import load_config
-from ..running import project_to_folder
 from .options import (
     bootstrap_opt,
     config_arg,
@@ -37,6 +35,9 @@ resume_opt = click.option(
 
 def _run(ctx: click.Context, config: Path, out: Path, model: Path | None, overwrite: bool, workers, address, threads,
          bootstrap: int | None = None, resume: bool = False) -> None:
+    from ..config import load_config
+    from ..running import project_to_folder  # imported per command: a quick start for the others
+
     cfg = with_bootstrap(load_config(config), bootstrap)
     quiet = ctx.obj.get("quiet")
     res = project_to_folder(

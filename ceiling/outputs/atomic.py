@@ -13,7 +13,7 @@ import os
 from collections.abc import Iterator
 from pathlib import Path
 
-__all__ = ["atomic_path", "atomic_write_text", "atomic_write_bytes", "sha256_file", "tmp_name"]
+__all__ = ["atomic_path", "atomic_write_text", "atomic_write_bytes", "sha256_file", "tmp_name", "Prefetch"]
 
 TMP_PREFIX = ".partial-"
 
@@ -48,9 +48,51 @@ def atomic_write_text(path: str | Path, text: str) -> Path:
     return atomic_write_bytes(path, text.encode("utf-8"))
 
 
+_DIGESTS: dict[tuple, str] = {}  # (path, device, inode, size, mtime) -> sha256, for this process
+
+
+def _stat_key(path: str | Path) -> tuple:
+    st = os.stat(path)
+    return (os.path.realpath(path), st.st_dev, st.st_ino, st.st_size, st.st_mtime_ns)
+
+
 def sha256_file(path: str | Path, chunk: int = 1 << 20) -> str:
+    """The file's sha256. Remembered for the file as it is (path, inode, size, modification
+    time), so a run that lists its files in several places (completion records, the report, the
+    manifest) reads each file once; a file rewritten since gets a new digest."""
+    key = _stat_key(path)
+    hit = _DIGESTS.get(key)
+    if hit is not None:
+        return hit
     h = hashlib.sha256()
     with open(path, "rb") as fh:
         while block := fh.read(chunk):
             h.update(block)
-    return h.hexdigest()
+    _DIGESTS[key] = digest = h.hexdigest()
+    return digest
+
+
+class Prefetch:
+    """Checksums of files computed in a background thread (their digests are remembered by
+    :func:`sha256_file`); :meth:`close` stops it between files and waits for it."""
+
+    def __init__(self, paths) -> None:
+        import threading
+
+        self._stop = threading.Event()
+        self._paths = [Path(p) for p in paths]
+        self._thread = threading.Thread(target=self._run, name="ceiling-checksums", daemon=True)
+        self._thread.start()
+
+    def _run(self) -> None:
+        for p in self._paths:
+            if self._stop.is_set():
+                return
+            with contextlib.suppress(OSError):
+                if p.is_file():
+                    sha256_file(p)
+
+    def close(self, *, finish: bool = True) -> None:
+        if not finish:
+            self._stop.set()
+        self._thread.join()

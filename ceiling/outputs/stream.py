@@ -13,9 +13,9 @@ Here the overviews are computed by the chunk tasks instead, from the chunk they 
   overviews (on all cores) and computes nothing.
 
 Overview levels are those GDAL's COG driver would make (factors 2, 4, ... until a level fits
-in one COG block), as far as one chunk covers them (factors up to the chunk size). Values are
-averaged over the valid cells of each block (float maps) or taken from the block's first cell
-(categories), as GDAL's AVERAGE and NEAREST do.
+in one COG block), as far as one chunk covers them (factors up to the chunk size), with the
+values GDAL would give them: each float level averages the valid cells of 2 x 2 blocks of the
+level before, each category level takes the first cell of each block (AVERAGE and NEAREST).
 """
 
 from __future__ import annotations
@@ -66,9 +66,9 @@ def to_disk(a: np.ndarray, dtype: str) -> np.ndarray:
 def decimate(a: np.ndarray, levels: Sequence[int], *, categorical: bool) -> list[np.ndarray]:
     """The overview blocks of one chunk (its origin a multiple of every factor), as stored.
 
-    ``a`` holds NaN for nodata (float maps) or 255 (codes). Float levels are means over the
-    valid cells of each f x f block (nodata where none); code levels take the block's first
-    cell, as GDAL's nearest-neighbour overviews do.
+    ``a`` holds NaN for nodata (float maps) or 255 (codes). Each float level holds the means
+    of the valid cells of 2 x 2 blocks of the level before (nodata where none), code levels take
+    the block's first cell: GDAL's AVERAGE and NEAREST overviews.
     """
     out = []
     h, w = a.shape
@@ -76,25 +76,52 @@ def decimate(a: np.ndarray, levels: Sequence[int], *, categorical: bool) -> list
         for f in levels:
             out.append(np.ascontiguousarray(a[::f, ::f]).astype(np.uint8))
         return out
-    valid = np.isfinite(a)
-    s = np.where(valid, a, 0.0).astype(np.float64)
-    n = valid.astype(np.float64)
+    level = np.ascontiguousarray(a, dtype=np.float32)
     step = 1
     for f in levels:
-        while step < f:  # halve until the factor: sums and counts of 2 x 2 blocks
-            s, n = _pairs(s), _pairs(n)
+        while step < f:  # each level from the one before, as GDAL does: means of 2 x 2 means
+            s, n = _first_level(level)
+            with np.errstate(invalid="ignore", divide="ignore"):
+                level = np.where(n > 0, s / np.maximum(n, 1.0), np.nan).astype(np.float32)
             step *= 2
-        with np.errstate(invalid="ignore", divide="ignore"):
-            m = np.where(n > 0, s / np.maximum(n, 1.0), np.nan)
-        out.append(to_disk(m, "float32"))
+        out.append(to_disk(level, "float32"))
     return out
 
 
+def _first_level_py(a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Sums (float64) and counts of the valid cells of each 2 x 2 block."""
+    h, w = a.shape
+    hh, ww = (h + 1) // 2, (w + 1) // 2
+    s = np.zeros((hh, ww))
+    n = np.zeros((hh, ww))
+    for r in range(h):
+        for c in range(w):
+            v = a[r, c]
+            if np.isfinite(v):
+                s[r // 2, c // 2] += np.float64(v)
+                n[r // 2, c // 2] += 1.0
+    return s, n
+
+
+try:
+    import numba
+
+    _first_level = numba.njit(_first_level_py, nogil=True, cache=True)
+except ImportError:  # pragma: no cover - numba is a dependency; this is the slow way
+    def _first_level(a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        valid = np.isfinite(a)
+        return _pairs(np.where(valid, a, 0.0).astype(np.float64)), _pairs(valid.astype(np.float64))
+
+
 def _pairs(x: np.ndarray) -> np.ndarray:
+    """Sums of 2 x 2 blocks (zero beyond an odd edge), in the order (a + b) + (c + d)."""
     h, w = x.shape
     if h % 2 or w % 2:
         x = np.pad(x, ((0, h % 2), (0, w % 2)))
-    return x.reshape(x.shape[0] // 2, 2, x.shape[1] // 2, 2).sum(axis=(1, 3))
+    top = x[0::2, 0::2] + x[0::2, 1::2]
+    top += x[1::2, 0::2]
+    top += x[1::2, 1::2]
+    return top
 
 
 @dataclass
