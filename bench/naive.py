@@ -5,9 +5,9 @@
 Every layer of a climate is opened whole with rioxarray, the maps are computed with NumPy
 expressions over the whole grid (the law of the minimum over a stack of predictors, MESS with
 ``searchsorted``, change, zone and switch), and written with rioxarray (GeoTIFF, COG driver,
-deflate with a predictor, all cores) and xarray (one NetCDF per climate, deflate level 1 with
-shuffle): the same maps, formats and codec settings as the projection, without its summary
-tables, figures and report.
+deflate with a predictor, all cores): the same GeoTIFF maps as the projection, with the same
+codec settings, and nothing else (the projection also writes the NetCDF, the summary tables,
+figures, report and manifest).
 """
 
 from __future__ import annotations
@@ -35,7 +35,7 @@ def naive(cfg_path: Path, out: Path, n_fut: int) -> None:
     from ceiling.model import load_model
     from ceiling.novelty import mess_kernel
 
-    from .inputs import K, PERIODS
+    from .inputs import PERIODS, K
 
     m = load_model(cfg_path.parent / "model.json")
     root = cfg_path.parent
@@ -57,7 +57,6 @@ def naive(cfg_path: Path, out: Path, n_fut: int) -> None:
             ch, pct = change_kernel(present[0], c)
             maps.update(change=ch, change_pct=pct, zone=zone_kernel(present[0], c), switch=switch_kernel(present[1], code, K))
         (out / name).mkdir(parents=True, exist_ok=True)
-        ds = {}
         for lname, arr in maps.items():
             nodata = 255 if arr.dtype == np.uint8 else np.float32(-3.4028234663852886e38)
             if arr.dtype != np.uint8:
@@ -66,10 +65,7 @@ def naive(cfg_path: Path, out: Path, n_fut: int) -> None:
             da_ = da_.rio.write_crs(tpl.rio.crs).rio.write_transform(tpl.rio.transform()).rio.write_nodata(nodata)
             da_.rio.to_raster(out / name / f"{lname}.tif", driver="COG", compress="DEFLATE", predictor="YES",
                               num_threads="ALL_CPUS")
-            ds[lname] = da_
-        xr.Dataset(ds).to_netcdf(out / name / "maps.nc", encoding={
-            v: {"zlib": True, "complevel": 1, "shuffle": True, "chunksizes": (256, 256)} for v in ds})
-        del layers, values, maps, ds
+        del layers, values, maps
 
 
 if __name__ == "__main__":

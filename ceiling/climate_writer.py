@@ -12,6 +12,7 @@ with their checksums for ``--resume``.
 from __future__ import annotations
 
 import json
+import time
 from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
@@ -91,12 +92,15 @@ def write_climate(
     comp: Compute, stage: Path, grid: GridSpec, climate: Climate, plan: Any, *, species: Sequence[str],
     factor_lists: Sequence[Sequence[str]], chunk: int, used: Sequence[str] = (), n_stats: int,
     nc: NetcdfWriter | None = None, novel: str = "", ensemble: bool = False,
-    say: Callable[[str], None] | None = None, record: bool = True,
+    say: Callable[[str], None] | None = None, record: bool = True, timings: dict[str, float] | None = None,
 ) -> tuple[list[Path], list[np.ndarray]]:
     """Compute and write every map of one climate; return the files and the summary vectors.
 
     With ``record`` (the default) a completion record makes the climate reusable by ``--resume``.
+    ``timings`` accumulates the seconds this process spends copying chunks into files
+    (``writes``) and making the COGs (``cogs``), the part of the work that stays here on a cluster.
     """
+    timings = timings if timings is not None else {}
     done = stage / done_record_name(climate.key)
     reused = _reuse_climate(done, stage, n_stats) if record else None
     if reused is not None:
@@ -105,7 +109,7 @@ def write_climate(
         if nc is not None and any(s.nc_name for s in plan.maps):  # its NetCDF part, from the files
             readers = tuple(readback_reader(stage / layer_path(species[s.species], climate.key, s.layer), grid)
                             for s in plan.maps)
-            _stream(comp, ReadbackPlan(readers, plan.maps, plan.nc_chunk), grid, chunk, [], nc, climate, say)
+            _stream(comp, ReadbackPlan(readers, plan.maps, plan.nc_chunk), grid, chunk, [], nc, climate, say, timings)
         return reused
     streams = []
     for spec in plan.maps:
@@ -117,7 +121,7 @@ def write_climate(
                 "period": climate.period, "layer": spec.layer, "novel_cells": novel, "caution": CAUTION}
         streams.append(MapStream(final, grid, spec.dtype, long_name, units, chunk, cats, tags, list(spec.levels)))
     try:
-        stats, counts = _stream(comp, plan, grid, chunk, streams, nc, climate, say)
+        stats, counts = _stream(comp, plan, grid, chunk, streams, nc, climate, say, timings)
         for f, n in zip(used, counts):
             if int(n) == 0:
                 raise DataError(
@@ -125,8 +129,10 @@ def write_climate(
                     "study area; check the file and the mask"
                 )
         written = []
+        t0 = time.perf_counter()
         for s in streams:
             written += s.finalize()
+        timings["cogs"] = timings.get("cogs", 0.0) + time.perf_counter() - t0
     except BaseException:
         for s in streams:
             s.discard()
@@ -137,14 +143,17 @@ def write_climate(
 
 
 def _stream(comp: Compute, plan: Any, grid: GridSpec, chunk: int, streams: list[MapStream],
-            nc: NetcdfWriter | None, climate: Climate, say: Callable[[str], None] | None) -> tuple[list[np.ndarray], np.ndarray]:
+            nc: NetcdfWriter | None, climate: Climate, say: Callable[[str], None] | None,
+            timings: dict[str, float]) -> tuple[list[np.ndarray], np.ndarray]:
     windows = chunk_windows(grid, chunk)
     per_chunk: list[list[np.ndarray]] = [[] for _ in windows]
     counts = None
     waiting: dict[int, list] = {}
     next_nc = 0
     report = max(1, len(windows) // 10) if (say is not None and len(windows) >= 20) else 0
+    spent = 0.0
     for done, (i, res) in enumerate(comp.imap(run_chunk, plan, windows), start=1):
+        t0 = time.perf_counter()
         for s, data, ovs in zip(streams, res.data, res.overviews):
             s.write(res.rows, res.cols, data, ovs)
         per_chunk[i] = res.stats
@@ -156,8 +165,10 @@ def _stream(comp: Compute, plan: Any, grid: GridSpec, chunk: int, streams: list[
                     for r0, c0, data in chunks:
                         nc.write(spec.nc_name, spec.nc_lead, r0, c0, data)
                 next_nc += 1
+        spent += time.perf_counter() - t0
         if report and done % report == 0:
             say(f"      {climate.label}: {100 * done // len(windows)}% of the grid")
+    timings["writes"] = timings.get("writes", 0.0) + spent
     # sums in chunk order: the same figures whatever order the chunks finished in
     stats = [np.sum([v[k] for v in per_chunk], axis=0) for k in range(len(per_chunk[0]))] if per_chunk[0] else []
     return stats, counts if counts is not None else np.zeros(0, dtype=np.int64)

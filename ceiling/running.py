@@ -210,6 +210,7 @@ def run_projection(
     factor_lists = [m.factor_names for m in ms]
     species = [m.species for m in ms]
     timings: dict[str, float] = {}
+    work: dict[str, float] = {}  # seconds spent here writing chunks and making COGs (all climates)
     notes: list[str] = []
     written: list[Path] = []
     rows: list[dict] = []
@@ -241,7 +242,8 @@ def run_projection(
                                map_specs(len(ms), present_names, grid, opts.chunk, netcdf=nc_spec(None)),
                                mask=None if mask is None else mask.data, bootstrap=opts if boot else None, nc_chunk=nc.chunk_shape)
             w, vec = write_climate(comp, stage, grid, cl[0], plan, species=species, factor_lists=factor_lists,
-                                   chunk=opts.chunk, used=used, n_stats=len(ms), nc=nc, novel=rule, say=progress)
+                                   chunk=opts.chunk, used=used, n_stats=len(ms), nc=nc, novel=rule, say=progress,
+                                   timings=work)
             written += w
             r, _ = _stats_rows(ms, cl[0], vec, layouts)
             rows += r
@@ -257,16 +259,15 @@ def run_projection(
                                    bootstrap=opts if boot else None, boot_readers=readers if boot else None,
                                    nc_chunk=nc.chunk_shape)
                 w, vec = write_climate(comp, stage, grid, c, plan, species=species, factor_lists=factor_lists,
-                                       chunk=opts.chunk, used=used, n_stats=len(ms), nc=nc, novel=rule, say=progress)
+                                       chunk=opts.chunk, used=used, n_stats=len(ms), nc=nc, novel=rule, say=progress,
+                                   timings=work)
                 written += w
                 r, t = _stats_rows(ms, c, vec, layouts)
                 rows += r
                 trans += t
                 timings["/".join(c.key)] = time.perf_counter() - t0
                 say(f"[{j}/{len(cl)}] {c.label}: {len(w)} files in {timings['/'.join(c.key)]:.1f} s")
-            t0 = time.perf_counter()
-            written.append(nc.close())
-            timings["netcdf"] = time.perf_counter() - t0
+            written.append(nc.close())  # its chunks went in climate by climate
         except BaseException:
             nc.discard()
             raise
@@ -275,11 +276,13 @@ def run_projection(
             ens = Climate(sc, ENSEMBLE, pe, {})
             plan = _ensemble_plan(stage, grid, ms, back, members, opts)
             w, vec = write_climate(comp, stage, grid, ens, plan, species=species, factor_lists=factor_lists,
-                                   chunk=opts.chunk, n_stats=len(ms), novel=rule, ensemble=True, say=progress)
+                                   chunk=opts.chunk, n_stats=len(ms), novel=rule, ensemble=True, say=progress,
+                                   timings=work)
             written += w
             rows += _ensemble_rows(ms, ens, vec, members, missing)
             timings["/".join(ens.key)] = time.perf_counter() - t0
             say(f"ensemble {sc} / {pe} ({len(members)} models): {len(w)} files in {timings['/'.join(ens.key)]:.1f} s")
+        timings.update({f"{k}_here": v for k, v in work.items()})
         summary = pd.DataFrame(rows)
         transitions = pd.DataFrame(trans)
         written.append(atomic_write_text(stage / SUMMARY_FILE, summary.to_csv(index=False, float_format="%.6g")))
