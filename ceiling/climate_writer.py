@@ -93,6 +93,7 @@ def write_climate(
     factor_lists: Sequence[Sequence[str]], chunk: int, used: Sequence[str] = (), n_stats: int,
     nc: NetcdfWriter | None = None, novel: str = "", ensemble: bool = False,
     say: Callable[[str], None] | None = None, record: bool = True, timings: dict[str, float] | None = None,
+    deflate_level: int = 1,
 ) -> tuple[list[Path], list[np.ndarray]]:
     """Compute and write every map of one climate; return the files and the summary vectors.
 
@@ -119,7 +120,8 @@ def write_climate(
         final.parent.mkdir(parents=True, exist_ok=True)
         tags = {"species": species[spec.species], "scenario": climate.scenario, "climate_model": climate.model,
                 "period": climate.period, "layer": spec.layer, "novel_cells": novel, "caution": CAUTION}
-        streams.append(MapStream(final, grid, spec.dtype, long_name, units, chunk, cats, tags, list(spec.levels)))
+        streams.append(MapStream(final, grid, spec.dtype, long_name, units, chunk, cats, tags, list(spec.levels),
+                                 deflate_level))
     try:
         stats, counts = _stream(comp, plan, grid, chunk, streams, nc, climate, say, timings)
         for f, n in zip(used, counts):

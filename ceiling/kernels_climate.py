@@ -187,7 +187,7 @@ def _loop(xs, kind, center, scale, clip, lo, hi, coef, knots, n_knots, transform
                 x = xs[j][r, b0:b1]
                 lo_j = lo[j] if clip[j] else -np.inf
                 hi_j = hi[j] if clip[j] else np.inf
-                ce, sc = center[j], scale[j]
+                ce, isc = center[j], 1.0 / scale[j]
                 c0, c1 = coef[j, 0], coef[j, 1]
                 kd = kind[j]
                 c2 = coef[j, 2] if kd == 1 else 0.0
@@ -199,7 +199,7 @@ def _loop(xs, kind, center, scale, clip, lo, hi, coef, knots, n_knots, transform
                         u = np.float64(x[i])
                         u = lo_j if u < lo_j else u
                         u = hi_j if u > hi_j else u
-                        z = (u - ce) / sc
+                        z = (u - ce) * isc
                         e = c0 + z * (c1 + z * c2)
                         best[i] = e
                         arg[i] = 0.0
@@ -209,7 +209,7 @@ def _loop(xs, kind, center, scale, clip, lo, hi, coef, knots, n_knots, transform
                         u = np.float64(x[i])
                         u = lo_j if u < lo_j else u
                         u = hi_j if u > hi_j else u
-                        z = (u - ce) / sc
+                        z = (u - ce) * isc
                         e = c0 + z * (c1 + z * c2)
                         bad[i] = 1.0 if e != e else bad[i]
                         lower = e < best[i]
@@ -221,7 +221,7 @@ def _loop(xs, kind, center, scale, clip, lo, hi, coef, knots, n_knots, transform
                             u = np.float64(x[i])
                             u = lo_j if u < lo_j else u
                             u = hi_j if u > hi_j else u
-                            eb[i] = c0 + c1 * ((u - ce) / sc)
+                            eb[i] = c0 + c1 * ((u - ce) * isc)
                     else:
                         for i in range(m):
                             eb[i] = _predictor(np.float64(x[i]), j, kind, center, scale, clip, lo, hi, coef, knots,

@@ -15,7 +15,7 @@ back-transform of that predictor clipped at zero. Where any factor's predictor i
 ceiling is NaN and the code is 255, as in the reference.
 
 Per factor, as in ``FactorCeiling``: ``hold`` clips the value to the observed range first,
-``extend`` does not; ``z = (x - center) / scale``; linear ``c0 + c1 z``; quadratic
+``extend`` does not; ``z = (x - center) * (1 / scale)``; linear ``c0 + c1 z``; quadratic
 ``c0 + z (c1 + z c2)`` (Horner, the same operation order as the reference, so the predictors
 agree to the last bit); natural cubic spline in the truncated-power form of
 :class:`ceiling.boundary.bases.SplineBasis`.
@@ -122,7 +122,7 @@ def _predictor_scalar(x, j, kind, center, scale, clip, lo, hi, coef, knots, n_kn
             x = lo[j]
         elif x > hi[j]:
             x = hi[j]
-    z = (x - center[j]) / scale[j]
+    z = (x - center[j]) * (1.0 / scale[j])
     kd = kind[j]
     if kd == LINEAR:
         return coef[j, 0] + coef[j, 1] * z
@@ -170,7 +170,7 @@ def _loop(xs, kind, center, scale, clip, lo, hi, coef, knots, n_knots, transform
             # nothing; NaN fails both comparisons and stays NaN
             lo_j = lo[j] if clip[j] else -np.inf
             hi_j = hi[j] if clip[j] else np.inf
-            ce, sc = center[j], scale[j]
+            ce, isc = center[j], 1.0 / scale[j]
             c0, c1 = coef[j, 0], coef[j, 1]
             kd = kind[j]
             c2 = coef[j, 2] if kd == QUADRATIC else 0.0
@@ -182,7 +182,7 @@ def _loop(xs, kind, center, scale, clip, lo, hi, coef, knots, n_knots, transform
                     v = np.float64(x[i])
                     v = lo_j if v < lo_j else v
                     v = hi_j if v > hi_j else v
-                    z = (v - ce) / sc
+                    z = (v - ce) * isc
                     e = c0 + z * (c1 + z * c2)
                     best[i] = e
                     arg[i] = 0.0
@@ -192,7 +192,7 @@ def _loop(xs, kind, center, scale, clip, lo, hi, coef, knots, n_knots, transform
                     v = np.float64(x[i])
                     v = lo_j if v < lo_j else v
                     v = hi_j if v > hi_j else v
-                    z = (v - ce) / sc
+                    z = (v - ce) * isc
                     e = c0 + z * (c1 + z * c2)
                     bad[i] = 1.0 if e != e else bad[i]
                     lower = e < best[i]
@@ -204,7 +204,7 @@ def _loop(xs, kind, center, scale, clip, lo, hi, coef, knots, n_knots, transform
                         v = np.float64(x[i])
                         v = lo_j if v < lo_j else v
                         v = hi_j if v > hi_j else v
-                        eb[i] = c0 + c1 * ((v - ce) / sc)
+                        eb[i] = c0 + c1 * ((v - ce) * isc)
                 else:
                     for i in range(m):
                         eb[i] = predictor(np.float64(x[i]), j, kind, center, scale, clip, lo, hi, coef, knots, n_knots)
@@ -223,20 +223,22 @@ def _loop(xs, kind, center, scale, clip, lo, hi, coef, knots, n_knots, transform
                         arg[i] = jj if lower else arg[i]
         oc = out_c[b0:b1]
         ok = out_code[b0:b1]
-        if transform == 1:  # back to abundance units, one loop per transform
+        # back to abundance units and out, one loop per transform
+        if transform == 1:
             for i in range(m):
                 e = best[i] if best[i] > 0.0 else 0.0
-                best[i] = math.expm1(e)
+                oc[i] = np.nan if bad[i] != 0.0 else math.expm1(e)
+                ok[i] = 255 if bad[i] != 0.0 else np.uint8(arg[i])
         elif transform == 2:
             for i in range(m):
                 e = best[i] if best[i] > 0.0 else 0.0
-                best[i] = e * e
+                oc[i] = np.nan if bad[i] != 0.0 else e * e
+                ok[i] = 255 if bad[i] != 0.0 else np.uint8(arg[i])
         else:
             for i in range(m):
-                best[i] = best[i] if best[i] > 0.0 else 0.0
-        for i in range(m):
-            oc[i] = np.nan if bad[i] != 0.0 else best[i]
-            ok[i] = 255 if bad[i] != 0.0 else np.uint8(arg[i])
+                e = best[i] if best[i] > 0.0 else 0.0
+                oc[i] = np.nan if bad[i] != 0.0 else e
+                ok[i] = 255 if bad[i] != 0.0 else np.uint8(arg[i])
 
 
 if HAVE_NUMBA:
@@ -252,7 +254,7 @@ def _predictor_numpy(x: np.ndarray, j: int, pm: PackedModel) -> np.ndarray:
     """The same predictor as :func:`_predictor_scalar`, over a slice of cells."""
     if pm.clip[j]:
         x = np.clip(x, pm.lo[j], pm.hi[j])
-    z = (x - pm.center[j]) / pm.scale[j]
+    z = (x - pm.center[j]) * (1.0 / pm.scale[j])
     c = pm.coef[j]
     if pm.kind[j] == LINEAR:
         return c[0] + c[1] * z

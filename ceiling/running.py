@@ -243,7 +243,7 @@ def run_projection(
                                mask=None if mask is None else mask.data, bootstrap=opts if boot else None, nc_chunk=nc.chunk_shape)
             w, vec = write_climate(comp, stage, grid, cl[0], plan, species=species, factor_lists=factor_lists,
                                    chunk=opts.chunk, used=used, n_stats=len(ms), nc=nc, novel=rule, say=progress,
-                                   timings=work)
+                                   timings=work, deflate_level=opts.deflate_level)
             written += w
             r, _ = _stats_rows(ms, cl[0], vec, layouts)
             rows += r
@@ -260,7 +260,7 @@ def run_projection(
                                    nc_chunk=nc.chunk_shape)
                 w, vec = write_climate(comp, stage, grid, c, plan, species=species, factor_lists=factor_lists,
                                        chunk=opts.chunk, used=used, n_stats=len(ms), nc=nc, novel=rule, say=progress,
-                                   timings=work)
+                                   timings=work, deflate_level=opts.deflate_level)
                 written += w
                 r, t = _stats_rows(ms, c, vec, layouts)
                 rows += r
@@ -277,7 +277,7 @@ def run_projection(
             plan = _ensemble_plan(stage, grid, ms, back, members, opts)
             w, vec = write_climate(comp, stage, grid, ens, plan, species=species, factor_lists=factor_lists,
                                    chunk=opts.chunk, n_stats=len(ms), novel=rule, ensemble=True, say=progress,
-                                   timings=work)
+                                   timings=work, deflate_level=opts.deflate_level)
             written += w
             rows += _ensemble_rows(ms, ens, vec, members, missing)
             timings["/".join(ens.key)] = time.perf_counter() - t0

@@ -36,7 +36,9 @@ class _Scaled:
     scale: float
 
     def _z(self, x: np.ndarray) -> np.ndarray:
-        return (np.asarray(x, dtype=np.float64) - self.center) / self.scale
+        # a multiplication by the reciprocal (not a division): the compiled projection kernels
+        # (kernels_fast, kernels_climate) do the same, so their predictors agree to the last bit
+        return (np.asarray(x, dtype=np.float64) - self.center) * (1.0 / self.scale)
 
 
 @dataclass(frozen=True)

@@ -60,8 +60,9 @@ def _axis_attrs(crs: CRS) -> tuple[dict[str, str], dict[str, str]]:
 
 
 def chunk_side(chunk: int) -> int:
-    """HDF5 chunk side for a projection chunk: the largest power of two (16..256) dividing it."""
-    t = 256
+    """HDF5 chunk side for a projection chunk: the largest power of two (16..512) dividing it
+    (512 x 512 float32 is 1 MiB, a usual size for reading whole maps or windows of them)."""
+    t = 512
     while t > 16 and chunk % t:
         t //= 2
     return t
