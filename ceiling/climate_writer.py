@@ -121,7 +121,7 @@ def write_climate(
         tags = {"species": species[spec.species], "scenario": climate.scenario, "climate_model": climate.model,
                 "period": climate.period, "layer": spec.layer, "novel_cells": novel, "caution": CAUTION}
         streams.append(MapStream(final, grid, spec.dtype, long_name, units, chunk, cats, tags, list(spec.levels),
-                                 deflate_level))
+                                 deflate_level, comp.workers if comp.kind == "threads" else None))
     try:
         stats, counts = _stream(comp, plan, grid, chunk, streams, nc, climate, say, timings)
         for f, n in zip(used, counts):

@@ -53,7 +53,7 @@ class Compute:
 
     def describe(self) -> str:
         if self.kind == "threads":
-            return f"dask threads ({self.workers})"
+            return f"{self.workers} threads"
         return f"dask.distributed {self.kind} ({self.workers} workers)"
 
 
@@ -111,7 +111,9 @@ def _imap_threads(fn, plan, items, workers: int, window: int) -> Iterator[tuple[
 def _imap_cluster(client, fn, plan, items, window: int) -> Iterator[tuple[int, Any]]:
     from distributed import as_completed
 
-    remote = client.scatter(plan, broadcast=True, hash=False)
+    # the plan as the result of a task (not scattered data): a worker that dies with it loses
+    # nothing the scheduler cannot recompute; the others fetch it once each
+    remote = client.submit(_identity, plan, pure=False)
     pending: dict[Any, int] = {}
     nxt = 0
 
@@ -135,3 +137,8 @@ def _imap_cluster(client, fn, plan, items, window: int) -> Iterator[tuple[int, A
     finally:
         for fut in pending:
             fut.cancel()
+        remote.release()
+
+
+def _identity(x: Any) -> Any:
+    return x

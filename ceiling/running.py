@@ -444,7 +444,7 @@ def _project_to_folder(cfg: RunConfig, out: Path, cl: list[Climate], inputs: lis
         from .maps import make_figures
         from .report import build_report
         t_report = time.perf_counter()
-        n_figures = len(make_figures(stage))
+        n_figures = len(make_figures(stage, workers=threads))  # --threads caps the figure processes too
         build_report(stage, config=cfg.source, inputs=inputs)
         run.timings["figures_and_report"] = time.perf_counter() - t_report
         if progress:

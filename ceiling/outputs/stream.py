@@ -139,6 +139,7 @@ class MapStream:
     tags: dict[str, str] = field(default_factory=dict)
     levels: list[int] = field(default_factory=list)
     deflate_level: int = 1
+    threads: int | None = None  # GDAL's compression threads for the COG (None: all cores)
 
     def __post_init__(self) -> None:
         self.final = Path(self.final)
@@ -229,7 +230,7 @@ class MapStream:
         try:
             with rasterio.Env(GDAL_PAM_ENABLED="NO", GDAL_CACHEMAX=64):
                 rasterio.shutil.copy(
-                    str(main), str(staging), driver="COG", BLOCKSIZE=cog_block(w, h), NUM_THREADS="ALL_CPUS",
+                    str(main), str(staging), driver="COG", BLOCKSIZE=cog_block(w, h), NUM_THREADS=str(self.threads) if self.threads else "ALL_CPUS",
                     OVERVIEWS="FORCE_USE_EXISTING" if self.levels else "NONE", LEVEL=self.deflate_level,
                     **COG_OPTIONS)
             os.replace(staging, self.final)
