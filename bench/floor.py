@@ -104,7 +104,7 @@ def run(cfg_path: Path, raw: Path, out: Path, threads: int) -> float:
             arrays = tuple(raw / layer_path(species[s.species], c.key, s.layer).with_suffix(".npy") for s in maps)
             plan = FloorPlan(tuple(readers[f] for f in used), maps, arrays, nc.chunk_shape)
             write_climate(comp, out, grid, c, plan, species=species, factor_lists=[used] * len(species),
-                          chunk=opts.chunk, n_stats=0, record=False, deflate_level=opts.deflate_level)
+                          chunk=opts.chunk, n_stats=0, nc=nc, record=False, deflate_level=opts.deflate_level)
         nc.close()
     return time.perf_counter() - t0
 

@@ -34,7 +34,7 @@ from .inputs import K, build_model, field_rows, write_case
 
 SIZES = {
     # the largest the issue asks for that fit in 15 minutes on this 2-core machine, see BENCHMARKS.md
-    "full": dict(kernel=16_000_000, e2e=8192, naive=8192, naive_futures=4, memory=(4096, 16384), parallel=2048,
+    "full": dict(kernel=16_000_000, e2e=8192, naive=8192, naive_futures=4, memory=(4096, 16384), parallel=4096,
                  parallel_chunks=16, fit=(20_000, 200)),
     "quick": dict(kernel=2_000_000, e2e=512, naive=512, naive_futures=2, memory=(256, 1024), parallel=512,
                   parallel_chunks=4, fit=(2_000, 20)),
@@ -53,10 +53,13 @@ _LAUNCH = (
 def measure(cmd: list, env: dict | None = None) -> tuple[float, float, str]:
     """(wall seconds, peak RSS MiB, stdout) of a child process.
 
-    The child is started by a small launcher process that reads its ``wait4`` rusage: Linux
+    Dirty pages left by the previous step are written out first (``os.sync``), so that no
+    measurement pays for another's writes. The child is started by a small launcher process
+    that reads its ``wait4`` rusage: Linux
     carries the peak RSS of the process that calls ``exec`` over into the new program, so a
     child started straight from this (large) process would report at least this one's peak.
     """
+    os.sync()  # the previous step's writes reach the disk now, not during this measurement
     t0 = time.perf_counter()
     with tempfile.TemporaryFile() as out, tempfile.TemporaryFile() as err, \
             tempfile.NamedTemporaryFile(suffix=".rss", delete=False) as rss_file:

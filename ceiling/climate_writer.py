@@ -93,13 +93,15 @@ def write_climate(
     factor_lists: Sequence[Sequence[str]], chunk: int, used: Sequence[str] = (), n_stats: int,
     nc: NetcdfWriter | None = None, novel: str = "", ensemble: bool = False,
     say: Callable[[str], None] | None = None, record: bool = True, timings: dict[str, float] | None = None,
-    deflate_level: int = 1,
+    deflate_level: int = 1, keep: dict[tuple[int, str], Path] | None = None,
 ) -> tuple[list[Path], list[np.ndarray]]:
     """Compute and write every map of one climate; return the files and the summary vectors.
 
     With ``record`` (the default) a completion record makes the climate reusable by ``--resume``.
     ``timings`` accumulates the seconds this process spends copying chunks into files
     (``writes``) and making the COGs (``cogs``), the part of the work that stays here on a cluster.
+    ``keep``, when given, maps (species index, layer) to nothing yet: those layers' uncompressed
+    stream files are kept and their paths filled in (the caller removes them).
     """
     timings = timings if timings is not None else {}
     done = stage / done_record_name(climate.key)
@@ -132,8 +134,11 @@ def write_climate(
                 )
         written = []
         t0 = time.perf_counter()
-        for s in streams:
-            written += s.finalize()
+        for spec, s in zip(plan.maps, streams):
+            kept = keep is not None and (spec.species, spec.layer) in keep
+            written += s.finalize(keep=kept)
+            if kept:
+                keep[(spec.species, spec.layer)] = s.path
         timings["cogs"] = timings.get("cogs", 0.0) + time.perf_counter() - t0
     except BaseException:
         for s in streams:

@@ -281,6 +281,13 @@ def _loop(xs, kind, center, scale, clip, lo, hi, coef, knots, n_knots, transform
                         lower = s < sbest[i]
                         sbest[i] = s if lower else sbest[i]
                         sarg[i] = jj if lower else sarg[i]
+            # the block's area-weighted sums in registers, added to the vector after the block
+            s_area = 0.0
+            s_change = 0.0
+            s_cells = 0.0
+            s_now = 0.0
+            s_later = 0.0
+            s_novel = 0.0
             for i in range(m):
                 col = b0 + i
                 # ceiling and limiting factor
@@ -355,13 +362,13 @@ def _loop(xs, kind, center, scale, clip, lo, hi, coef, knots, n_knots, transform
                     sw = np.int64(pcode) * k + np.int64(code)
                     if sw < k * k:
                         v[o_switch + sw] += wt
-                    v[o_area] += wt
-                    v[o_change] += d * wt
-                    v[o_cells] += 1.0
-                    v[o_now_area] += pv * wt
-                    v[o_later_area] += fc * wt
+                    s_area += wt
+                    s_change += d * wt
+                    s_cells += 1.0
+                    s_now += pv * wt
+                    s_later += fc * wt
                     if ext == 1:
-                        v[o_novel] += wt
+                        s_novel += wt
                         if zone < n_zones:
                             v[o_zone_novel + zone] += wt
                     # histogram bin: the number of edges at or below d (searchsorted, side="right")
@@ -377,6 +384,12 @@ def _loop(xs, kind, center, scale, clip, lo, hi, coef, knots, n_knots, transform
                     while g < nb + 1 and hedges[g] <= d:
                         g += 1
                     v[o_hist + g] += wt
+            v[o_area] += s_area
+            v[o_change] += s_change
+            v[o_cells] += s_cells
+            v[o_now_area] += s_now
+            v[o_later_area] += s_later
+            v[o_novel] += s_novel
 
 
 if HAVE_NUMBA:

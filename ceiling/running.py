@@ -13,6 +13,7 @@ folder that replaces the output folder only when complete:
 
 from __future__ import annotations
 
+import contextlib
 import logging
 import time
 from collections.abc import Callable, Sequence
@@ -51,6 +52,7 @@ from .outputs.names import (
     layer_path,
 )
 from .outputs.netcdf import NetcdfVariable, NetcdfWriter, create_netcdf
+from .outputs.stream import StreamReader
 from .projection import (
     FUTURE_BOUNDS,
     PRESENT_BOUNDS,
@@ -232,8 +234,13 @@ def run_projection(
     present_names = PRESENT_LAYERS + (PRESENT_BOUNDS if boot else ())
     future_names = FUTURE_LAYERS + (FUTURE_BOUNDS if boot else ())
     # per run, not process-wide: GDAL's block cache for the reads and writes of this process
-    with rasterio.Env(GDAL_CACHEMAX=opts.gdal_cache_mb), \
+    # the present's ceiling and limiting factor stay uncompressed until the run ends: every
+    # future reads them back by copying, not decoding (removed here in any case)
+    kept: dict[tuple[int, str], Path | None] = (
+        {(i, n): None for i in range(len(ms)) for n in ("ceiling", "limiting")} if len(cl) > 1 else {})
+    with rasterio.Env(GDAL_CACHEMAX=opts.gdal_cache_mb), contextlib.ExitStack() as cleanup, \
             compute_context(workers=workers, address=address, threads=threads) as comp:
+        cleanup.callback(lambda: [Path(p).unlink(missing_ok=True) for p in kept.values() if p is not None])
         try:
             t0 = time.perf_counter()
             nc.write_areas(lambda r, c: window_areas(grid, r, c))
@@ -243,14 +250,15 @@ def run_projection(
                                mask=None if mask is None else mask.data, bootstrap=opts if boot else None, nc_chunk=nc.chunk_shape)
             w, vec = write_climate(comp, stage, grid, cl[0], plan, species=species, factor_lists=factor_lists,
                                    chunk=opts.chunk, used=used, n_stats=len(ms), nc=nc, novel=rule, say=progress,
-                                   timings=work, deflate_level=opts.deflate_level)
+                                   timings=work, deflate_level=opts.deflate_level, keep=kept or None)
             written += w
             r, _ = _stats_rows(ms, cl[0], vec, layouts)
             rows += r
             timings["present"] = time.perf_counter() - t0
             say(f"[1/{len(cl)}] present ({cl[0].period}): {len(w)} files in {timings['present']:.1f} s")
-            back = tuple((readback_reader(stage / layer_path(sp, cl[0].key, "ceiling"), grid),
-                          readback_reader(stage / layer_path(sp, cl[0].key, "limiting"), grid)) for sp in species)
+            back = tuple(tuple(StreamReader(kept[(i, n)], LAYER_META[n][0]) if kept.get((i, n)) is not None
+                               else readback_reader(stage / layer_path(sp, cl[0].key, n), grid)  # resumed run
+                               for n in ("ceiling", "limiting")) for i, sp in enumerate(species))
             for j, (c, lay) in enumerate(zip(cl[1:], opened[1:]), start=2):
                 t0 = time.perf_counter()
                 plan = ClimatePlan(grid, tuple((f, lay[f]) for f in used), policy, params,

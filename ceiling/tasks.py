@@ -100,7 +100,9 @@ class ClimatePlan:
             if self.present is not None:
                 pc = _read(self.present[i][0], rows, cols)
                 pl = _read(self.present[i][1], rows, cols)
-                present = (pc, np.where(np.isnan(pl), NODATA_CODE, pl).astype(np.uint8))
+                if pl.dtype != np.uint8:  # read back from a COG as float32 with NaN
+                    pl = np.where(np.isnan(pl), NODATA_CODE, pl).astype(np.uint8)
+                present = (pc, pl)
             maps, st = climate_chunk(m, {f: values[f] for f in m.factor_names}, area, params=params, present=present)
             for name, a in maps.items():
                 out[(i, name)] = a

@@ -38,7 +38,7 @@ from ..categories import Category, hex_to_rgba
 from .atomic import atomic_write_text, tmp_name
 from .geotiff import CODE_NODATA, FLOAT_NODATA, cog_block, pam_xml, stream_tile
 
-__all__ = ["overview_levels", "decimate", "to_disk", "MapStream", "COG_OPTIONS"]
+__all__ = ["overview_levels", "decimate", "to_disk", "MapStream", "StreamReader", "COG_OPTIONS"]
 
 COG_OPTIONS = {"COMPRESS": "DEFLATE", "PREDICTOR": "YES", "BIGTIFF": "IF_SAFER"}
 
@@ -209,9 +209,10 @@ class MapStream:
         return (f'<VRTDataset rasterXSize="{size[0]}" rasterYSize="{size[1]}"><SRS>{escape(self.grid.crs_wkt)}</SRS>'
                 f"<GeoTransform>{gt}</GeoTransform>{md}{band}</VRTDataset>")
 
-    def finalize(self) -> list[Path]:
+    def finalize(self, *, keep: bool = False) -> list[Path]:
         """Copy the map and its overviews into a COG at ``final`` (atomically); return the files
-        written (the COG and, for categories, its ``.aux.xml`` naming them)."""
+        written (the COG and, for categories, its ``.aux.xml`` naming them). With ``keep`` the
+        uncompressed stream file stays, for :class:`StreamReader` (the caller removes it)."""
         _close_stream(self)
         w, h = self.grid.width, self.grid.height
         aff = self.grid.affine
@@ -242,12 +243,32 @@ class MapStream:
         if self.categories is not None:
             written.append(atomic_write_text(self.final.with_name(self.final.name + ".aux.xml"),
                                              pam_xml(self.categories, self.description)))
-        self.path.unlink(missing_ok=True)
+        if not keep:
+            self.path.unlink(missing_ok=True)
         return written
 
     def discard(self) -> None:
         _close_stream(self)
         self.path.unlink(missing_ok=True)
+
+
+class StreamReader:
+    """Windows of a map from its kept stream file (uncompressed: reading is a copy, not a decode).
+
+    Float maps come back with NaN for nodata, codes as uint8. Picklable (a path and numbers).
+    """
+
+    def __init__(self, path: Path, dtype: str) -> None:
+        self.path, self.dtype = str(path), dtype
+
+    def __getitem__(self, key: tuple[slice, slice]) -> np.ndarray:
+        rows, cols = key
+        window = Window(cols.start, rows.start, cols.stop - cols.start, rows.stop - rows.start)
+        with rasterio.Env(GDAL_PAM_ENABLED="NO"), rasterio.open(self.path) as src:
+            a = src.read(1, window=window)
+        if self.dtype == "float32":
+            a[a == np.float32(FLOAT_NODATA)] = np.nan
+        return a
 
 
 # Stream files open for writing, most recently used last. Their number is capped, so a run with
