@@ -134,10 +134,17 @@ def write_climate(
                 )
         written = []
         t0 = time.perf_counter()
-        for spec, s in zip(plan.maps, streams):
-            kept = keep is not None and (spec.species, spec.layer) in keep
-            written += s.finalize(keep=kept)
-            if kept:
+        keeps = [keep is not None and (spec.species, spec.layer) in keep for spec in plan.maps]
+        if comp.client is None:  # here, one COG after another, each on all cores
+            finished = [s.finalize(keep=k) for s, k in zip(streams, keeps)]
+        else:  # on a cluster the workers make the COGs, several at once (they see the files)
+            for s in streams:
+                s.close()
+            out: dict[int, list[Path]] = dict(comp.imap(_finalize, None, list(zip(streams, keeps))))
+            finished = [out[i] for i in range(len(streams))]
+        for spec, s, k, files in zip(plan.maps, streams, keeps, finished):
+            written += files
+            if k:
                 keep[(spec.species, spec.layer)] = s.path
         timings["cogs"] = timings.get("cogs", 0.0) + time.perf_counter() - t0
     except BaseException:
@@ -147,6 +154,11 @@ def write_climate(
     if record:
         _write_done_record(done, stage, written, stats)
     return written, stats
+
+
+def _finalize(_: Any, item: tuple[MapStream, bool]) -> list[Path]:
+    stream, keep = item
+    return stream.finalize(keep=keep)
 
 
 def _stream(comp: Compute, plan: Any, grid: GridSpec, chunk: int, streams: list[MapStream],

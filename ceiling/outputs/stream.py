@@ -247,6 +247,10 @@ class MapStream:
             self.path.unlink(missing_ok=True)
         return written
 
+    def close(self) -> None:
+        """Close the file if this process holds it open (before another process copies it)."""
+        _close_stream(self)
+
     def discard(self) -> None:
         _close_stream(self)
         self.path.unlink(missing_ok=True)
