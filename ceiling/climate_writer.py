@@ -11,6 +11,7 @@ with their checksums for ``--resume``.
 
 from __future__ import annotations
 
+import functools
 import json
 import time
 from collections.abc import Callable, Sequence
@@ -156,6 +157,17 @@ def write_climate(
     return written, stats
 
 
+def _run_and_write(streams: list[MapStream], seconds: list[float], plan: Any, window: tuple[slice, slice]) -> Any:
+    """A chunk task that also writes its maps into the stream files (threads of this process)."""
+    res = run_chunk(plan, window)
+    t0 = time.perf_counter()
+    for s, data, ovs in zip(streams, res.data, res.overviews):
+        s.write(res.rows, res.cols, data, ovs)
+    seconds.append(time.perf_counter() - t0)
+    res.data, res.overviews = [], []
+    return res
+
+
 def _finalize(_: Any, item: tuple[MapStream, bool]) -> list[Path]:
     stream, keep = item
     return stream.finalize(keep=keep)
@@ -171,9 +183,14 @@ def _stream(comp: Compute, plan: Any, grid: GridSpec, chunk: int, streams: list[
     next_nc = 0
     report = max(1, len(windows) // 10) if (say is not None and len(windows) >= 20) else 0
     spent = 0.0
-    for done, (i, res) in enumerate(comp.imap(run_chunk, plan, windows), start=1):
+    # threads of this process write their chunk's maps themselves (one lock per file); from a
+    # cluster the results come back and are written here
+    direct = comp.client is None and bool(streams)
+    in_tasks: list[float] = []
+    task = functools.partial(_run_and_write, streams, in_tasks) if direct else run_chunk
+    for done, (i, res) in enumerate(comp.imap(task, plan, windows), start=1):
         t0 = time.perf_counter()
-        for s, data, ovs in zip(streams, res.data, res.overviews):
+        for s, data, ovs in zip(streams if not direct else (), res.data, res.overviews):
             s.write(res.rows, res.cols, data, ovs)
         per_chunk[i] = res.stats
         counts = res.valid.copy() if counts is None else counts + res.valid
@@ -188,6 +205,7 @@ def _stream(comp: Compute, plan: Any, grid: GridSpec, chunk: int, streams: list[
         if report and done % report == 0:
             say(f"      {climate.label}: {100 * done // len(windows)}% of the grid")
     timings["writes"] = timings.get("writes", 0.0) + spent
+    timings["stream_writes_in_tasks"] = timings.get("stream_writes_in_tasks", 0.0) + sum(in_tasks)
     # sums in chunk order: the same figures whatever order the chunks finished in
     stats = [np.sum([v[k] for v in per_chunk], axis=0) for k in range(len(per_chunk[0]))] if per_chunk[0] else []
     return stats, counts if counts is not None else np.zeros(0, dtype=np.int64)

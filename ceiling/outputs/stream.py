@@ -22,6 +22,7 @@ from __future__ import annotations
 
 import math
 import os
+import threading
 from collections import OrderedDict
 from collections.abc import Sequence
 from dataclasses import dataclass, field
@@ -157,18 +158,31 @@ class MapStream:
                        BIGTIFF="IF_SAFER")
         with rasterio.Env(GDAL_PAM_ENABLED="NO"), rasterio.open(self.path, "w", **profile):
             pass
+        self._lock = threading.Lock()
+
+    def __getstate__(self) -> dict:  # to a cluster worker (which makes the COG): no lock
+        state = dict(self.__dict__)
+        state.pop("_lock", None)
+        return state
+
+    def __setstate__(self, state: dict) -> None:
+        self.__dict__.update(state)
+        self._lock = threading.Lock()
 
     def write(self, rows: slice, cols: slice, data: np.ndarray, overviews: Sequence[np.ndarray]) -> None:
         """Write one chunk (values as stored, see :func:`to_disk`) and its overview blocks.
 
-        Called from one thread only (the writer's): the file stays open between chunks (a few
-        handles at most, see :data:`OPEN_STREAMS`), which halves the cost of a chunk's write.
+        Threads may call it at once: each file has its own lock, and stays open between chunks
+        (a few dozen handles at most, see :data:`OPEN_STREAMS`), which halves the cost of a
+        chunk's write. GDAL guards each dataset against block-cache flushes from other threads.
         """
-        dst = _open_stream(self)
-        dst.write(data, 1, window=Window(cols.start, rows.start, data.shape[1], data.shape[0]))
-        x0 = self.grid.width
-        for f, off, ov in zip(self.levels, self.offsets, overviews):
-            dst.write(ov, 1, window=Window(x0 + cols.start // f, int(off) + rows.start // f, ov.shape[1], ov.shape[0]))
+        with self._lock:
+            dst = _open_stream(self)
+            dst.write(data, 1, window=Window(cols.start, rows.start, data.shape[1], data.shape[0]))
+            x0 = self.grid.width
+            for f, off, ov in zip(self.levels, self.offsets, overviews):
+                dst.write(ov, 1, window=Window(x0 + cols.start // f, int(off) + rows.start // f, ov.shape[1],
+                                               ov.shape[0]))
 
     # --- the COG ---------------------------------------------------------------------------
 
@@ -280,23 +294,33 @@ class StreamReader:
 # next chunk.
 OPEN_STREAMS = 64
 _OPEN: OrderedDict[int, tuple[MapStream, Any]] = OrderedDict()
+_OPEN_LOCK = threading.Lock()
 
 
 def _open_stream(s: MapStream) -> Any:
+    """The open dataset of a stream (the caller holds the stream's lock)."""
     key = id(s)
-    if key in _OPEN:
-        _OPEN.move_to_end(key)
-        return _OPEN[key][1]
-    while len(_OPEN) >= OPEN_STREAMS:
-        _, (_, old) = _OPEN.popitem(last=False)
-        old.close()
-    with rasterio.Env(GDAL_PAM_ENABLED="NO"):
-        dst = rasterio.open(s.path, "r+")
-    _OPEN[key] = (s, dst)
-    return dst
+    with _OPEN_LOCK:
+        if key in _OPEN:
+            _OPEN.move_to_end(key)
+            return _OPEN[key][1]
+        for victim in list(_OPEN):  # close the least recently used files that no thread is writing
+            if len(_OPEN) < OPEN_STREAMS:
+                break
+            other = _OPEN[victim][0]
+            if other._lock.acquire(blocking=False):
+                try:
+                    _OPEN.pop(victim)[1].close()
+                finally:
+                    other._lock.release()
+        with rasterio.Env(GDAL_PAM_ENABLED="NO"):
+            dst = rasterio.open(s.path, "r+")
+        _OPEN[key] = (s, dst)
+        return dst
 
 
 def _close_stream(s: MapStream) -> None:
-    entry = _OPEN.pop(id(s), None)
+    with _OPEN_LOCK:
+        entry = _OPEN.pop(id(s), None)
     if entry is not None:
         entry[1].close()
