@@ -185,60 +185,9 @@ def _loop(xs, kind, center, scale, clip, lo, hi, coef, knots, n_knots, transform
             m = b1 - b0
             for j in range(k):
                 x = xs[j][r, b0:b1]
-                lo_j = lo[j] if clip[j] else -np.inf
-                hi_j = hi[j] if clip[j] else np.inf
-                ce, isc = center[j], 1.0 / scale[j]
-                c0, c1 = coef[j, 0], coef[j, 1]
-                kd = kind[j]
-                c2 = coef[j, 2] if kd == 1 else 0.0
                 jj = np.float64(j)
-                # the law of the minimum, as kernels_fast._loop: each predictor folded at once
-                # into the running minimum (strict <: the first factor wins ties)
-                if kd == 1 and j == 0:
-                    for i in range(m):
-                        u = np.float64(x[i])
-                        u = lo_j if u < lo_j else u
-                        u = hi_j if u > hi_j else u
-                        z = (u - ce) * isc
-                        e = c0 + z * (c1 + z * c2)
-                        best[i] = e
-                        arg[i] = 0.0
-                        bad[i] = 1.0 if e != e else 0.0
-                elif kd == 1:
-                    for i in range(m):
-                        u = np.float64(x[i])
-                        u = lo_j if u < lo_j else u
-                        u = hi_j if u > hi_j else u
-                        z = (u - ce) * isc
-                        e = c0 + z * (c1 + z * c2)
-                        bad[i] = 1.0 if e != e else bad[i]
-                        lower = e < best[i]
-                        best[i] = e if lower else best[i]
-                        arg[i] = jj if lower else arg[i]
-                else:
-                    if kd == 0:
-                        for i in range(m):
-                            u = np.float64(x[i])
-                            u = lo_j if u < lo_j else u
-                            u = hi_j if u > hi_j else u
-                            eb[i] = c0 + c1 * ((u - ce) * isc)
-                    else:
-                        for i in range(m):
-                            eb[i] = _predictor(np.float64(x[i]), j, kind, center, scale, clip, lo, hi, coef, knots,
-                                               n_knots)
-                    if j == 0:
-                        for i in range(m):
-                            e = eb[i]
-                            best[i] = e
-                            arg[i] = 0.0
-                            bad[i] = 1.0 if e != e else 0.0
-                    else:
-                        for i in range(m):
-                            e = eb[i]
-                            bad[i] = 1.0 if e != e else bad[i]
-                            lower = e < best[i]
-                            best[i] = e if lower else best[i]
-                            arg[i] = jj if lower else arg[i]
+                # the law of the minimum, as kernels_fast._loop
+                _fold_factor(x, m, j, kind, center, scale, clip, lo, hi, coef, knots, n_knots, eb, best, arg, bad)
                 # novelty (MESS): similarity of the value to the factor's reference sample
                 nj = n_ref[j]
                 rlo, rhi = ref[j, 0], ref[j, nj - 1]
@@ -395,7 +344,7 @@ def _loop(xs, kind, center, scale, clip, lo, hi, coef, knots, n_knots, transform
 if HAVE_NUMBA:
     import numba
 
-    from .kernels_fast import predictor as _predictor
+    from .kernels_fast import fold_factor as _fold_factor
 
     _fused = numba.njit(_loop, nogil=True, cache=True, error_model="numpy")
 else:  # pragma: no cover - without numba the reference runs

@@ -149,6 +149,70 @@ def _predictor_scalar(x, j, kind, center, scale, clip, lo, hi, coef, knots, n_kn
     return eta
 
 
+def _fold_factor(x, m, j, kind, center, scale, clip, lo, hi, coef, knots, n_knots, eb, best, arg, bad):
+    """Fold factor ``j``'s predictor at the block's ``m`` values ``x`` into the running minimum
+    ``best`` (its factor in ``arg``, NaN seen in ``bad``); the first factor starts it.
+
+    Shared by this module's loop and the per-chunk loop of :mod:`ceiling.kernels_climate`.
+    """
+    # 'hold' clips to the observed range; 'extend' clips to (-inf, inf), which changes nothing;
+    # NaN fails both comparisons and stays NaN
+    lo_j = lo[j] if clip[j] else -np.inf
+    hi_j = hi[j] if clip[j] else np.inf
+    ce, isc = center[j], 1.0 / scale[j]
+    c0, c1 = coef[j, 0], coef[j, 1]
+    kd = kind[j]
+    c2 = coef[j, 2] if kd == QUADRATIC else 0.0
+    jj = np.float64(j)
+    # the predictor of each cell folded at once into the running minimum (strict <: the first
+    # factor wins ties); one tight loop per basis and for the first factor
+    if kd == QUADRATIC and j == 0:
+        for i in range(m):
+            v = np.float64(x[i])
+            v = lo_j if v < lo_j else v
+            v = hi_j if v > hi_j else v
+            z = (v - ce) * isc
+            e = c0 + z * (c1 + z * c2)
+            best[i] = e
+            arg[i] = 0.0
+            bad[i] = 1.0 if e != e else 0.0
+        return
+    if kd == QUADRATIC:
+        for i in range(m):
+            v = np.float64(x[i])
+            v = lo_j if v < lo_j else v
+            v = hi_j if v > hi_j else v
+            z = (v - ce) * isc
+            e = c0 + z * (c1 + z * c2)
+            bad[i] = 1.0 if e != e else bad[i]
+            lower = e < best[i]
+            best[i] = e if lower else best[i]
+            arg[i] = jj if lower else arg[i]
+        return
+    if kd == LINEAR:  # predictors of the block into eb, then the same fold
+        for i in range(m):
+            v = np.float64(x[i])
+            v = lo_j if v < lo_j else v
+            v = hi_j if v > hi_j else v
+            eb[i] = c0 + c1 * ((v - ce) * isc)
+    else:
+        for i in range(m):
+            eb[i] = predictor(np.float64(x[i]), j, kind, center, scale, clip, lo, hi, coef, knots, n_knots)
+    if j == 0:
+        for i in range(m):
+            e = eb[i]
+            best[i] = e
+            arg[i] = 0.0
+            bad[i] = 1.0 if e != e else 0.0
+    else:
+        for i in range(m):
+            e = eb[i]
+            bad[i] = 1.0 if e != e else bad[i]
+            lower = e < best[i]
+            best[i] = e if lower else best[i]
+            arg[i] = jj if lower else arg[i]
+
+
 _BLOCK = 2048  # cells per block of the compiled loop: the running minimum stays in the L1 cache
 
 
@@ -165,62 +229,7 @@ def _loop(xs, kind, center, scale, clip, lo, hi, coef, knots, n_knots, transform
         b1 = min(n, b0 + _BLOCK)
         m = b1 - b0
         for j in range(k):  # factor by factor over the block: branch-free inner loops
-            x = xs[j][b0:b1]
-            # 'hold' clips to the observed range; 'extend' clips to (-inf, inf), which changes
-            # nothing; NaN fails both comparisons and stays NaN
-            lo_j = lo[j] if clip[j] else -np.inf
-            hi_j = hi[j] if clip[j] else np.inf
-            ce, isc = center[j], 1.0 / scale[j]
-            c0, c1 = coef[j, 0], coef[j, 1]
-            kd = kind[j]
-            c2 = coef[j, 2] if kd == QUADRATIC else 0.0
-            jj = np.float64(j)
-            # the predictor of each cell folded at once into the running minimum (strict <: the
-            # first factor wins ties); one tight loop per basis and for the first factor
-            if kd == QUADRATIC and j == 0:
-                for i in range(m):
-                    v = np.float64(x[i])
-                    v = lo_j if v < lo_j else v
-                    v = hi_j if v > hi_j else v
-                    z = (v - ce) * isc
-                    e = c0 + z * (c1 + z * c2)
-                    best[i] = e
-                    arg[i] = 0.0
-                    bad[i] = 1.0 if e != e else 0.0
-            elif kd == QUADRATIC:
-                for i in range(m):
-                    v = np.float64(x[i])
-                    v = lo_j if v < lo_j else v
-                    v = hi_j if v > hi_j else v
-                    z = (v - ce) * isc
-                    e = c0 + z * (c1 + z * c2)
-                    bad[i] = 1.0 if e != e else bad[i]
-                    lower = e < best[i]
-                    best[i] = e if lower else best[i]
-                    arg[i] = jj if lower else arg[i]
-            else:
-                if kd == LINEAR:  # predictors of the block into eb, then the same fold
-                    for i in range(m):
-                        v = np.float64(x[i])
-                        v = lo_j if v < lo_j else v
-                        v = hi_j if v > hi_j else v
-                        eb[i] = c0 + c1 * ((v - ce) * isc)
-                else:
-                    for i in range(m):
-                        eb[i] = predictor(np.float64(x[i]), j, kind, center, scale, clip, lo, hi, coef, knots, n_knots)
-                if j == 0:
-                    for i in range(m):
-                        e = eb[i]
-                        best[i] = e
-                        arg[i] = 0.0
-                        bad[i] = 1.0 if e != e else 0.0
-                else:
-                    for i in range(m):
-                        e = eb[i]
-                        bad[i] = 1.0 if e != e else bad[i]
-                        lower = e < best[i]
-                        best[i] = e if lower else best[i]
-                        arg[i] = jj if lower else arg[i]
+            fold_factor(xs[j][b0:b1], m, j, kind, center, scale, clip, lo, hi, coef, knots, n_knots, eb, best, arg, bad)
         oc = out_c[b0:b1]
         ok = out_code[b0:b1]
         # back to abundance units and out, one loop per transform
@@ -244,6 +253,8 @@ def _loop(xs, kind, center, scale, clip, lo, hi, coef, knots, n_knots, transform
 if HAVE_NUMBA:
     # error_model="numpy": no zero-division checks in the loops (scales are > 0), so they vectorise
     predictor = numba.njit(_predictor_scalar, nogil=True, cache=True, error_model="numpy")
+    # inlined (numba IR level) into both loops, which keep their scratch arrays private
+    fold_factor = numba.njit(_fold_factor, nogil=True, cache=True, error_model="numpy", inline="always")
     _fused = numba.njit(_loop, nogil=True, cache=True, error_model="numpy")
 else:  # pragma: no cover
     predictor = _predictor_scalar
