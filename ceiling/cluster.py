@@ -1,9 +1,10 @@
 """Where the chunks are computed: local threads (default), a local cluster, or a remote one.
 
 :func:`compute_context` yields a :class:`Compute`. The projection hands it one task per chunk
-(:meth:`Compute.imap`): read the chunk's layers, compute its maps and statistics, encode them;
-the results come back to the calling process, which writes them. On a cluster the tasks run on
-dask.distributed workers (the inputs must be readable there; the outputs are written here). The
+(:meth:`Compute.imap`): read the chunk's layers, compute its maps and statistics, encode them.
+On threads the tasks also write their maps; on a cluster they run on dask.distributed workers,
+their results come back to the calling process, which writes them, and the workers then make the
+COGs (inputs and the staging folder must be on a file system the workers share). The
 lazy xarray API (:mod:`ceiling.projection`) and the other stages use :meth:`Compute.compute`
 (dask's threaded scheduler, or the cluster), with :attr:`Compute.lock` serialising GeoTIFF
 window writes. Outputs are the same on all three: every chunk is computed by the same
@@ -15,6 +16,7 @@ from __future__ import annotations
 import contextlib
 import os
 import threading
+import uuid
 from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -114,12 +116,13 @@ def _imap_cluster(client, fn, plan, items, window: int) -> Iterator[tuple[int, A
     # the plan as the result of a task (not scattered data): a worker that dies with it loses
     # nothing the scheduler cannot recompute; the others fetch it once each
     remote = client.submit(_identity, plan, pure=False)
+    token = uuid.uuid4().hex  # task keys unique to this call
     pending: dict[Any, int] = {}
     nxt = 0
 
     def submit() -> Any:
         nonlocal nxt
-        fut = client.submit(fn, remote, items[nxt], pure=False, key=f"ceiling-chunk-{id(remote)}-{nxt}")
+        fut = client.submit(fn, remote, items[nxt], pure=False, key=f"ceiling-chunk-{token}-{nxt}")
         pending[fut] = nxt
         nxt += 1
         return fut

@@ -3,12 +3,14 @@
 :func:`project_to_folder` checks everything it can before computing, then, inside a staging
 folder that replaces the output folder only when complete:
 
-1. projects the present once (all species in one pass over the present layers) and writes its
-   maps; the futures read the present back from those files instead of recomputing it;
-2. for every future, reads each layer once, projects all species, compares with the present and
-   writes the maps, with the summary statistics reduced in the same pass;
-3. writes the run's CF NetCDF from the written maps, the summary and transition tables, and the
-   manifest (checksums of every input and output).
+1. lays out the run's CF NetCDF, then projects the present once (one task per chunk: every layer
+   read once, every species in one fused pass, see :mod:`ceiling.tasks`) and writes its maps;
+   the futures read the present back instead of recomputing it;
+2. for every future, the same, compared with the present, with the summary statistics reduced in
+   the same pass and each climate's NetCDF chunks stored as its maps are written
+   (:func:`ceiling.climate_writer.write_climate`);
+3. builds the multi-model ensembles from the maps written, then the summary and transition
+   tables, figures, report and the manifest (checksums of every input and output).
 """
 
 from __future__ import annotations
@@ -212,7 +214,7 @@ def run_projection(
     factor_lists = [m.factor_names for m in ms]
     species = [m.species for m in ms]
     timings: dict[str, float] = {}
-    work: dict[str, float] = {}  # seconds spent here writing chunks and making COGs (all climates)
+    work: dict[str, float] = {}  # seconds spent writing chunks and making COGs (all climates)
     notes: list[str] = []
     written: list[Path] = []
     rows: list[dict] = []
@@ -233,11 +235,11 @@ def run_projection(
     nc, nc_spec = _netcdf(stage, grid, ms, cl, opts, cfg, boot)
     present_names = PRESENT_LAYERS + (PRESENT_BOUNDS if boot else ())
     future_names = FUTURE_LAYERS + (FUTURE_BOUNDS if boot else ())
-    # per run, not process-wide: GDAL's block cache for the reads and writes of this process
     # the present's ceiling and limiting factor stay uncompressed until the run ends: every
     # future reads them back by copying, not decoding (removed here in any case)
     kept: dict[tuple[int, str], Path | None] = (
         {(i, n): None for i in range(len(ms)) for n in ("ceiling", "limiting")} if len(cl) > 1 else {})
+    # per run, not process-wide: GDAL's block cache for the reads and writes of this process
     with rasterio.Env(GDAL_CACHEMAX=opts.gdal_cache_mb), contextlib.ExitStack() as cleanup, \
             compute_context(workers=workers, address=address, threads=threads) as comp:
         cleanup.callback(lambda: [Path(p).unlink(missing_ok=True) for p in kept.values() if p is not None])
@@ -268,7 +270,7 @@ def run_projection(
                                    nc_chunk=nc.chunk_shape)
                 w, vec = write_climate(comp, stage, grid, c, plan, species=species, factor_lists=factor_lists,
                                        chunk=opts.chunk, used=used, n_stats=len(ms), nc=nc, novel=rule, say=progress,
-                                   timings=work, deflate_level=opts.deflate_level)
+                                       timings=work, deflate_level=opts.deflate_level)
                 written += w
                 r, t = _stats_rows(ms, c, vec, layouts)
                 rows += r

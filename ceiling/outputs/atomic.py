@@ -48,17 +48,18 @@ def atomic_write_text(path: str | Path, text: str) -> Path:
     return atomic_write_bytes(path, text.encode("utf-8"))
 
 
-_DIGESTS: dict[tuple, str] = {}  # (path, device, inode, size, mtime) -> sha256, for this process
+_DIGESTS: dict[tuple, str] = {}  # (path, device, inode, size, mtime, ctime) -> sha256, for this process
+_MAX_DIGESTS = 100_000
 
 
 def _stat_key(path: str | Path) -> tuple:
     st = os.stat(path)
-    return (os.path.realpath(path), st.st_dev, st.st_ino, st.st_size, st.st_mtime_ns)
+    return (os.path.realpath(path), st.st_dev, st.st_ino, st.st_size, st.st_mtime_ns, st.st_ctime_ns)
 
 
 def sha256_file(path: str | Path, chunk: int = 1 << 20) -> str:
-    """The file's sha256. Remembered for the file as it is (path, inode, size, modification
-    time), so a run that lists its files in several places (completion records, the report, the
+    """The file's sha256. Remembered for the file as it is (path, inode, size, modification and
+    change times), so a run that lists its files in several places (completion records, the report, the
     manifest) reads each file once; a file rewritten since gets a new digest."""
     key = _stat_key(path)
     hit = _DIGESTS.get(key)
@@ -68,6 +69,8 @@ def sha256_file(path: str | Path, chunk: int = 1 << 20) -> str:
     with open(path, "rb") as fh:
         while block := fh.read(chunk):
             h.update(block)
+    if len(_DIGESTS) >= _MAX_DIGESTS:  # a long-lived process: forget, do not grow
+        _DIGESTS.clear()
     _DIGESTS[key] = digest = h.hexdigest()
     return digest
 
