@@ -64,13 +64,12 @@ class FloorPlan:
 def run(cfg_path: Path, raw: Path, out: Path, threads: int) -> float:
     import rasterio
 
-    from ceiling.categories import layer_categories
-    from ceiling.climate_writer import LAYER_META, map_specs, write_climate
+    from ceiling.climate_writer import map_specs, netcdf_variables, write_climate
     from ceiling.cluster import compute_context
     from ceiling.config import load_config
     from ceiling.grids import template_grid
     from ceiling.outputs.names import FUTURE_LAYERS, NETCDF_FILE, PRESENT_LAYERS, layer_path
-    from ceiling.outputs.netcdf import NetcdfVariable, create_netcdf
+    from ceiling.outputs.netcdf import create_netcdf
     from ceiling.projection import climate_readers
     from ceiling.scenarios import climates, projection_options
 
@@ -82,11 +81,7 @@ def run(cfg_path: Path, raw: Path, out: Path, threads: int) -> float:
     grid = template_grid(cl[0].layers[used[0]], factor=used[0])
     species = sorted(p.name for p in raw.iterdir() if p.is_dir())
     out.mkdir(parents=True, exist_ok=True)
-    variables = [NetcdfVariable(f"{n}_present", LAYER_META[n][1], LAYER_META[n][2], layer_categories(n, used), True)
-                 for n in PRESENT_LAYERS]
-    if len(cl) > 1:
-        variables += [NetcdfVariable(n, LAYER_META[n][1], LAYER_META[n][2], layer_categories(n, used), False)
-                      for n in FUTURE_LAYERS]
+    variables = netcdf_variables(PRESENT_LAYERS, FUTURE_LAYERS if len(cl) > 1 else (), used)
     nc = create_netcdf(out / NETCDF_FILE, grid=grid, species=species, futures=[c.key for c in cl[1:]],
                        variables=variables, attrs={}, chunk=opts.chunk)
     with rasterio.Env(GDAL_CACHEMAX=opts.gdal_cache_mb), compute_context(threads=threads) as comp:

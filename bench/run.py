@@ -15,7 +15,6 @@ the same machine, so the ratios compare like with like even when absolute times 
 from __future__ import annotations
 
 import argparse
-import hashlib
 import json
 import os
 import platform
@@ -139,11 +138,13 @@ def record(bench: str, figure: str, reference: str, ratio: float | None, target:
 
 def digests(folder: Path) -> dict[str, str]:
     """sha256 of every map, table and NetCDF of a run (not the manifest, report or figures, which hold timings)."""
+    from ceiling.outputs.atomic import sha256_file
+
     out = {}
     for p in sorted(folder.rglob("*")):
         rel = p.relative_to(folder)
         if p.is_file() and p.suffix in (".tif", ".nc", ".csv") and rel.parts[0] != "figures":
-            out[str(rel)] = hashlib.sha256(p.read_bytes()).hexdigest()
+            out[str(rel)] = sha256_file(p)
     return out
 
 

@@ -26,12 +26,12 @@ from .errors import DataError
 from .grids import BlockReader, GridSpec, inspect_layer
 from .outputs.atomic import atomic_write_text
 from .outputs.names import layer_path
-from .outputs.netcdf import NetcdfWriter
+from .outputs.netcdf import NetcdfVariable, NetcdfWriter
 from .outputs.stream import MapStream, overview_levels
 from .scenarios import Climate, LayerRef
 from .tasks import MapSpec, ReadbackPlan, chunk_windows, run_chunk
 
-__all__ = ["write_climate", "map_specs", "readback_reader", "done_record_name", "LAYER_META"]
+__all__ = ["write_climate", "map_specs", "netcdf_variables", "readback_reader", "done_record_name", "LAYER_META"]
 
 # dtype, long name, units
 LAYER_META: dict[str, tuple[str, str, str]] = {
@@ -69,6 +69,20 @@ def readback_reader(path: Path, grid: GridSpec) -> BlockReader:
     """A reader of a map written earlier in the run (float32, NaN for nodata)."""
     info = inspect_layer(LayerRef(path), factor=path.stem)
     return BlockReader(info, grid, resampling="nearest")
+
+
+def netcdf_variables(present: Sequence[str], future: Sequence[str], factors: Sequence[str]) -> list[NetcdfVariable]:
+    """The map variables of the run's NetCDF: ``{layer}_present`` for the present's layers, one
+    (species, climate) variable per future layer (none without futures)."""
+    out = []
+    for name in present:
+        _, long_name, units = LAYER_META[name]
+        out.append(NetcdfVariable(f"{name}_present", f"{long_name}, present", units,
+                                  layer_categories(name, list(factors)), True))
+    for name in future:
+        _, long_name, units = LAYER_META[name]
+        out.append(NetcdfVariable(name, long_name, units, layer_categories(name, list(factors)), False))
+    return out
 
 
 def map_specs(

@@ -38,12 +38,8 @@ import numpy as np
 from .kernels import ABSENT, CLOSES, CONSTRAINT, NODATA_CODE, OPENS, RELEASE, STABLE
 from .kernels_fast import HAVE_NUMBA, PackedModel, pack, qualifies
 
-__all__ = ["ChunkParams", "MessTable", "mess_table", "climate_chunk", "climate_chunk_reference",
-           "PRESENT_MAPS", "FUTURE_MAPS"]
+__all__ = ["ChunkParams", "MessTable", "mess_table", "climate_chunk", "climate_chunk_reference"]
 
-PRESENT_MAPS = ("ceiling", "limiting", "novelty", "novel_factor", "extrapolated")
-FUTURE_MAPS = ("ceiling", "change", "change_pct", "limiting", "zone", "switch", "novelty", "novel_factor",
-               "extrapolated")
 _BLOCK = 1024  # cells per block of the compiled loop (scratch stays in the L1/L2 cache)
 
 

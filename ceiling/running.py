@@ -32,9 +32,15 @@ from .areas import window_areas
 from .categories import (
     ENSEMBLE_ZONES,
     ZONES,
-    layer_categories,
 )
-from .climate_writer import LAYER_META, done_record_name, map_specs, readback_reader, write_climate
+from .climate_writer import (
+    LAYER_META,
+    done_record_name,
+    map_specs,
+    netcdf_variables,
+    readback_reader,
+    write_climate,
+)
 from .cluster import compute_context
 from .config import RunConfig
 from .errors import DataError
@@ -53,7 +59,7 @@ from .outputs.names import (
     TRANSITIONS_FILE,
     layer_path,
 )
-from .outputs.netcdf import NetcdfVariable, NetcdfWriter, create_netcdf
+from .outputs.netcdf import NetcdfWriter, create_netcdf
 from .outputs.stream import StreamReader
 from .projection import (
     FUTURE_BOUNDS,
@@ -335,15 +341,8 @@ def _netcdf(stage: Path, grid: GridSpec, ms: list[CeilingModel], cl: list[Climat
                 for b, gb in enumerate(where):
                     sw[a * k + b] = ga * big + gb
             luts[i], switch_luts[i] = lut, sw
-    variables = []
-    for name in PRESENT_LAYERS + (PRESENT_BOUNDS if boot else ()):
-        _, long_name, units = LAYER_META[name]
-        variables.append(NetcdfVariable(f"{name}_present", f"{long_name}, present", units,
-                                        layer_categories(name, factors), True))
-    if len(cl) > 1:
-        for name in FUTURE_LAYERS + (FUTURE_BOUNDS if boot else ()):
-            _, long_name, units = LAYER_META[name]
-            variables.append(NetcdfVariable(name, long_name, units, layer_categories(name, factors), False))
+    variables = netcdf_variables(PRESENT_LAYERS + (PRESENT_BOUNDS if boot else ()),
+                                 FUTURE_LAYERS + (FUTURE_BOUNDS if boot else ()) if len(cl) > 1 else (), factors)
     writer = create_netcdf(
         stage / NETCDF_FILE, grid=grid, species=[m.species for m in ms], futures=[c.key for c in cl[1:]],
         variables=variables, chunk=opts.chunk,

@@ -63,6 +63,11 @@ def _read(reader: Any, rows: slice, cols: slice) -> np.ndarray:
     return np.asarray(reader[rows, cols])
 
 
+def _codes(a: np.ndarray) -> np.ndarray:
+    """Category codes as uint8 (a COG read back comes as float32 with NaN for nodata)."""
+    return a if a.dtype == np.uint8 else np.where(np.isnan(a), NODATA_CODE, a).astype(np.uint8)
+
+
 @dataclass(frozen=True)
 class ClimatePlan:
     """A projected climate: the present (``present`` None) or a future read against it.
@@ -99,10 +104,7 @@ class ClimatePlan:
             present = None
             if self.present is not None:
                 pc = _read(self.present[i][0], rows, cols)
-                pl = _read(self.present[i][1], rows, cols)
-                if pl.dtype != np.uint8:  # read back from a COG as float32 with NaN
-                    pl = np.where(np.isnan(pl), NODATA_CODE, pl).astype(np.uint8)
-                present = (pc, pl)
+                present = (pc, _codes(_read(self.present[i][1], rows, cols)))
             maps, st = climate_chunk(m, {f: values[f] for f in m.factor_names}, area, params=params, present=present)
             for name, a in maps.items():
                 out[(i, name)] = a
@@ -149,8 +151,7 @@ class EnsemblePlan:
         for i, members in enumerate(self.members):
             p = _read(self.present[i], rows, cols)
             fut = np.stack([_read(c, rows, cols) for c, _ in members])
-            lim = np.stack([_read(lr, rows, cols) for _, lr in members])
-            lim = np.where(np.isnan(lim), NODATA_CODE, lim).astype(np.uint8)
+            lim = _codes(np.stack([_read(lr, rows, cols) for _, lr in members]))
             r = ensemble_kernel(p, fut, lim, self.n_factors[i], robust=o.agreement_threshold, release=o.release_threshold,
                                 constraint=o.constraint_threshold, floor=o.absolute_floor, zero=o.zero_level)
             for name, a in r.items():
@@ -183,8 +184,7 @@ class ReadbackPlan:
         out = {}
         for spec, reader in zip(self.maps, self.readers):
             a = _read(reader, rows, cols)
-            out[(spec.species, spec.layer)] = a if spec.dtype == "float32" else \
-                np.where(np.isnan(a), NODATA_CODE, a).astype(np.uint8)
+            out[(spec.species, spec.layer)] = a if spec.dtype == "float32" else _codes(a)
         return out, [], np.zeros(0, dtype=np.int64)
 
 

@@ -6,13 +6,6 @@ import numpy as np
 import pytest
 import statsmodels.api as sm
 from numpy.testing import assert_allclose
-from scipy import stats
-
-from ceiling.boundary import fit_factor, quantile_fit
-from ceiling.boundary.diagnostics import pseudo_r1
-from ceiling.boundary.quantreg import check_loss
-from ceiling.errors import ConfigError, FitError
-
 from reference_values import (
     ENGEL_N,
     ENGEL_PSEUDO_R1,
@@ -20,6 +13,12 @@ from reference_values import (
     ENGEL_STATA_FULL,
     ENGEL_SUM_ADEV,
 )
+from scipy import stats
+
+from ceiling.boundary import fit_factor, quantile_fit
+from ceiling.boundary.diagnostics import pseudo_r1
+from ceiling.boundary.quantreg import check_loss
+from ceiling.errors import ConfigError, FitError
 
 
 @pytest.fixture(scope="module")

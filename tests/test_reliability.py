@@ -27,12 +27,19 @@ import sys
 import time
 from pathlib import Path
 
-import numpy as np
 import pytest
 import rasterio
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
-from projection_helpers import SmallCase, assert_refused, cli, model_document, write_json, SMALL_TEMP, SMALL_RAIN
+from projection_helpers import (
+    SMALL_RAIN,
+    SMALL_TEMP,
+    SmallCase,
+    assert_refused,
+    cli,
+    model_document,
+    write_json,
+)
 
 from ceiling.errors import CeilingError
 
@@ -157,7 +164,7 @@ def test_kill_trials_leave_no_half_written_output_and_resume_matches(big, refere
             delay = rng.uniform(0.5, 0.8 * seconds)
             _wait_for(lambda: False, delay, proc=p)  # sleep, unless the run ends first
         else:
-            assert _wait_for(lambda: "[3/" in err.read_text(), 240, proc=p), err.read_text()
+            assert _wait_for(lambda err=err: "[3/" in err.read_text(), 240, proc=p), err.read_text()
         if p.poll() is None:
             os.killpg(p.pid, signal.SIGKILL)
         p.wait(timeout=30)
