@@ -1,6 +1,6 @@
 """The benchmark suite: every figure printed next to the reference it is measured against.
 
-    python -m bench                      # full sizes (about 15 minutes on 2 cores)
+    python -m bench                      # full sizes (about 15 minutes on 2 cores); or python bench/run.py
     python -m bench --quick              # small sizes, a smoke run (about 2 minutes)
     python -m bench --only kernel,e2e    # a subset: kernel, e2e, naive, memory, parallel, fit, scale
     python -m bench --work DIR           # keep the generated inputs in DIR (reused when present)
@@ -29,7 +29,11 @@ from pathlib import Path
 
 import numpy as np
 
-from .inputs import K, build_model, field_rows, write_case
+if __package__ in (None, ""):  # run as a script, python bench/run.py: import the suite as a package
+    sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
+    __package__ = "bench"
+
+from .inputs import K, build_model, field_rows, write_case  # noqa: E402
 
 SIZES = {
     # the largest the issue asks for that fit in 15 minutes on this 2-core machine, see BENCHMARKS.md
@@ -407,7 +411,7 @@ def machine() -> str:
 
     mem = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES") / 2**30
     vers = ", ".join(f"{p} {md.version(p)}" for p in ("numpy", "numba", "rasterio", "dask", "distributed", "h5py",
-                                                        "netCDF4", "isal"))
+                                                        "netCDF4", "deflate"))
     return (f"{os.cpu_count()} CPUs ({platform.processor() or platform.machine()}), {mem:.0f} GiB, Python "
             f"{platform.python_version()}, GDAL {rasterio.__gdal_version__}, {vers}; load average at start "
             f"{os.getloadavg()[0]:.2f}")
