@@ -6,7 +6,8 @@
 - The COG must be valid (rio-cogeo's validator) and carry nodata, description, units, colour
   table and tags.
 - HDF5 chunks encoded by the tasks and stored with direct chunk writes must read back through
-  netCDF4 (the netCDF-C library) as the values written.
+  netCDF4 (the netCDF-C library) as the values written, and be exactly the zlib stream of HDF5's
+  shuffle layout, the same bytes every time.
 """
 
 from __future__ import annotations
@@ -135,3 +136,25 @@ def test_direct_netcdf_chunks_read_back_through_netcdf4(tmp_path):
         assert ds["zone"][0, 1].mask.all(), "chunks never written read as the fill value"
         assert np.all(ds["cell_area"][:] == 7.0)
         assert ds["ceiling"].filters()["shuffle"] and ds["ceiling"].filters()["zlib"]
+
+
+def test_encoded_chunk_is_a_zlib_stream_of_the_hdf5_shuffle_layout_and_repeats_exactly():
+    """The chunk bytes are what HDF5's filters would store: a zlib stream (RFC 1950, decoded here by
+    Python's zlib) of the byte-shuffled block (HDF5 shuffle filter, H5Z_FILTER_SHUFFLE: byte k of
+    every element together, k = 0, 1, ...), padded to the chunk shape with the fill value; and the
+    same block gives the same bytes every time, also from threads at once (repeated and resumed
+    runs must write identical NetCDF files)."""
+    import zlib
+    from concurrent.futures import ThreadPoolExecutor
+
+    a = to_disk(_map(200, 230, categorical=False), "float32")
+    fill = np.float32(FLOAT_NODATA)
+    got = encode_chunk(a, (256, 256), fill)
+    full = np.full((256, 256), fill, dtype=np.float32)
+    full[:200, :230] = a
+    as_bytes = full.tobytes()
+    shuffled = b"".join(as_bytes[k::4] for k in range(4))
+    assert zlib.decompress(got) == shuffled
+    with ThreadPoolExecutor(2) as pool:
+        again = list(pool.map(lambda _: encode_chunk(a, (256, 256), fill), range(16)))
+    assert all(b == got for b in again)
