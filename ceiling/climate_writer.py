@@ -24,7 +24,7 @@ from .categories import layer_categories
 from .cluster import Compute
 from .errors import DataError
 from .grids import BlockReader, GridSpec, inspect_layer
-from .outputs.atomic import atomic_write_text
+from .outputs.atomic import Prefetch, atomic_write_text
 from .outputs.names import layer_path
 from .outputs.netcdf import NetcdfVariable, NetcdfWriter
 from .outputs.stream import MapStream, overview_levels
@@ -139,6 +139,9 @@ def write_climate(
                 "period": climate.period, "layer": spec.layer, "novel_cells": novel, "caution": CAUTION}
         streams.append(MapStream(final, grid, spec.dtype, long_name, units, chunk, cats, tags, list(spec.levels),
                                  deflate_level, comp.workers if comp.kind == "threads" else None))
+    # the finished files' checksums (for the completion record and the manifest), each read
+    # while the next COG is copied
+    sums = Prefetch()
     try:
         stats, counts = _stream(comp, plan, grid, chunk, streams, nc, climate, say, timings)
         for f, n in zip(used, counts):
@@ -151,21 +154,27 @@ def write_climate(
         t0 = time.perf_counter()
         keeps = [keep is not None and (spec.species, spec.layer) in keep for spec in plan.maps]
         if comp.client is None:  # here, one COG after another, each on all cores
-            finished = [s.finalize(keep=k) for s, k in zip(streams, keeps)]
+            finished = []
+            for s, k in zip(streams, keeps):
+                finished.append(s.finalize(keep=k))
+                sums.add(finished[-1])
         else:  # on a cluster the workers make the COGs, several at once (they see the files)
             for s in streams:
                 s.close()
             out: dict[int, list[Path]] = dict(comp.imap(_finalize, None, list(zip(streams, keeps))))
             finished = [out[i] for i in range(len(streams))]
+            sums.add(p for files in finished for p in files)
         for spec, s, k, files in zip(plan.maps, streams, keeps, finished):
             written += files
             if k:
                 keep[(spec.species, spec.layer)] = s.path
         timings["cogs"] = timings.get("cogs", 0.0) + time.perf_counter() - t0
     except BaseException:
+        sums.close(finish=False)
         for s in streams:
             s.discard()
         raise
+    sums.close()
     if record:
         _write_done_record(done, stage, written, stats)
     return written, stats

@@ -422,6 +422,7 @@ def _project_to_folder(cfg: RunConfig, out: Path, cl: list[Climate], inputs: lis
     from .community import build_community
     from .fitting import fit_config, write_fit
     from .model import load_models
+    from .outputs.atomic import Prefetch
     from .outputs.folder import staged_folder
     from .outputs.manifest import write_manifest
     from .outputs.names import MANIFEST_FILE, MODEL_FILE
@@ -436,12 +437,16 @@ def _project_to_folder(cfg: RunConfig, out: Path, cl: list[Climate], inputs: lis
         if progress:
             progress(f"fitted {len(models)} species: " + ", ".join(
                 f"{m.species} ({sum(f.is_limiting for f in m.factors)}/{len(m.factors)} factors act as limits)" for m in models))
-    with staged_folder(out, overwrite=overwrite, resume=resume, fingerprint=run_fingerprint(cfg, inputs, model_path)) as stage:
+    with staged_folder(out, overwrite=overwrite, resume=resume, fingerprint=run_fingerprint(cfg, inputs, model_path)) as stage, \
+            contextlib.ExitStack() as cleanup:
         if fit_run is not None:
             write_fit(fit_run, stage)
         else:
             models.save(stage / MODEL_FILE)
         run = run_projection(cfg, models, stage, workers=workers, address=address, threads=threads, progress=progress)
+        # the NetCDF's and the tables' checksums, read beside the regions, community layers and figures
+        sums = Prefetch(run.written)
+        cleanup.callback(sums.close, finish=False)
         if zones_in is not None:  # zones.csv, zones.gpkg (ceiling/zones.py)
             run.timings["zones"] = summarize_zones(stage, zones_in, update_manifest=False, progress=progress).seconds
         if community_opts is not None:  # community/, community.csv (ceiling/community.py)
@@ -459,6 +464,7 @@ def _project_to_folder(cfg: RunConfig, out: Path, cl: list[Climate], inputs: lis
         if progress:
             progress(f"wrote {n_figures} figures and report.html in {run.timings['figures_and_report']:.1f} s")
         checksums.close()
+        sums.close()
         seconds = time.perf_counter() - t_start
         outputs = [p for p in stage.rglob("*") if p.is_file()]
         warnings_list = (list(fit_run.warnings) if fit_run is not None else []) + list(run.warnings)  # fit + projection notes

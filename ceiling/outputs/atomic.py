@@ -76,21 +76,26 @@ def sha256_file(path: str | Path, chunk: int = 1 << 20) -> str:
 
 
 class Prefetch:
-    """Checksums of files computed in a background thread (their digests are remembered by
-    :func:`sha256_file`); :meth:`close` stops it between files and waits for it."""
+    """Checksums of files computed in a background thread, in the order given (their digests are
+    remembered by :func:`sha256_file`); :meth:`add` queues more files. :meth:`close` waits until
+    every queued file is done, or with ``finish=False`` stops between files."""
 
-    def __init__(self, paths) -> None:
+    def __init__(self, paths=()) -> None:
+        import queue
         import threading
 
         self._stop = threading.Event()
-        self._paths = [Path(p) for p in paths]
+        self._queue: queue.SimpleQueue[Path | None] = queue.SimpleQueue()
+        self.add(paths)
         self._thread = threading.Thread(target=self._run, name="ceiling-checksums", daemon=True)
         self._thread.start()
 
+    def add(self, paths) -> None:
+        for p in paths:
+            self._queue.put(Path(p))
+
     def _run(self) -> None:
-        for p in self._paths:
-            if self._stop.is_set():
-                return
+        while (p := self._queue.get()) is not None and not self._stop.is_set():
             with contextlib.suppress(OSError):
                 if p.is_file():
                     sha256_file(p)
@@ -98,4 +103,5 @@ class Prefetch:
     def close(self, *, finish: bool = True) -> None:
         if not finish:
             self._stop.set()
+        self._queue.put(None)
         self._thread.join()
