@@ -1,7 +1,7 @@
 """The benchmark suite: every figure printed next to the reference it is measured against.
 
-    python -m bench                      # full sizes (about 15 minutes on 2 cores); or python bench/run.py
-    python -m bench --quick              # small sizes, a smoke run (about 2 minutes)
+    python -m bench                      # full sizes (13-26 minutes on 2 cores); or python bench/run.py
+    python -m bench --quick              # small sizes, a smoke run (a few minutes)
     python -m bench --only kernel,e2e    # a subset: kernel, e2e, naive, memory, parallel, fit, scale
     python -m bench --work DIR           # keep the generated inputs in DIR (reused when present)
     python -m bench --json FILE          # also write the results table as JSON
@@ -36,7 +36,7 @@ if __package__ in (None, ""):  # run as a script, python bench/run.py: import th
 from .inputs import K, build_model, field_rows, write_case  # noqa: E402
 
 SIZES = {
-    # the largest the issue asks for that fit in 15 minutes on this 2-core machine, see BENCHMARKS.md
+    # the sizes the benchmarks ask for; 13.3 minutes on the faster of two 2-core machines, see BENCHMARKS.md
     "full": dict(kernel=16_000_000, e2e=8192, naive=8192, naive_futures=4, memory=(4096, 16384), parallel=4096,
                  parallel_chunks=16, fit=(20_000, 200)),
     "quick": dict(kernel=2_000_000, e2e=512, naive=512, naive_futures=2, memory=(256, 1024), parallel=512,
