@@ -29,10 +29,7 @@ import rasterio
 import xarray as xr
 
 from .areas import window_areas
-from .categories import (
-    ENSEMBLE_ZONES,
-    ZONES,
-)
+from .categories import ENSEMBLE_ZONES, ZONES
 from .climate_writer import (
     LAYER_META,
     done_record_name,
