@@ -1,20 +1,33 @@
 """Names, codes and colours of every categorical layer, in one table.
 
-The GeoTIFF writer (colour table and category names), the NetCDF writer (``flag_values`` /
-``flag_meanings``), the figures and the report all read from here. 255 is nodata everywhere.
-Colours are the project's own choice: blue for release, orange for constraint (distinguishable
-with the common colour-vision deficiencies), and for factors the colour-blind-safe qualitative
-palette of Okabe & Ito (2008, "Color Universal Design").
+The GeoTIFF writer (colour table, category names, attribute table and layer style), the NetCDF
+writer (``flag_values`` / ``flag_meanings``), the figures and the report all read from here. 255
+is nodata everywhere; codes run from 0 without gaps.
+
+Colours. Blue for release, orange for constraint, purple for novel climate: these come unchanged
+from the ColorBrewer schemes (Cynthia A. Brewer, Mark Harrower and The Pennsylvania State
+University, colorbrewer2.org, Apache License 2.0; Harrower & Brewer 2003, "ColorBrewer.org: an
+online tool for selecting colour schemes for maps", The Cartographic Journal 40(1): 27-37), named
+beside each colour below (the 11-class schemes that matplotlib ships list them, except
+``#e66101``, which is in PuOr's 3- to 5-class schemes, from memory). The neutral classes
+("stable", "unchanged", "absent", "low agreement", "within sampled range") are our own choice: a
+pale sand and a mid grey, chosen so that every class differs clearly from the grey that marks
+no data in the figures (:data:`NODATA_GREY`) and from white, the usual GIS canvas behind the
+transparent nodata cells (CIEDE2000 >= 10: ``tests/test_categories.py``). Factor colours: the
+colour-blind-safe qualitative palette of Okabe & Ito (2008, "Color Universal Design"),
+including its black.
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass
 
-__all__ = ["layer_categories", "Category", "ZONES", "ZONE_CODE", "ENSEMBLE_ZONES", "ROBUSTNESS", "EXTRAPOLATION", "FACTOR_COLOURS", "NODATA_COLOUR", "factor_categories",
-           "switch_categories", "switch_code", "hex_to_rgba"]
+__all__ = ["layer_categories", "Category", "ZONES", "ZONE_CODE", "ENSEMBLE_ZONES", "ROBUSTNESS", "EXTRAPOLATION", "FACTOR_COLOURS", "NODATA_COLOUR",
+           "NODATA_GREY", "NO_CHANGE", "factor_categories", "switch_categories", "switch_code", "hex_to_rgba"]
 
-NODATA_COLOUR = "#00000000"
+NODATA_COLOUR = "#00000000"  # on disk: nodata is transparent in colour tables and styles
+NODATA_GREY = "#bdbdbd"  # in the figures: the background of nodata cells (ColorBrewer Greys)
+NO_CHANGE = "#e6dcc3"  # pale sand: "stable" zones and "unchanged" limiting factors (our own)
 
 
 @dataclass(frozen=True)
@@ -26,30 +39,31 @@ class Category:
 
 
 ZONES: tuple[Category, ...] = (
-    Category(0, "stable", "#d9d9d9", "ceiling changes by less than the thresholds"),
-    Category(1, "release", "#2166ac", "ceiling rises by more than the release threshold"),
-    Category(2, "constraint", "#e66101", "ceiling falls by more than the constraint threshold"),
-    Category(3, "opens", "#92c5de", "zero now, above zero later"),
-    Category(4, "closes", "#fdb863", "above zero now, zero later"),
-    Category(5, "absent", "#f7f7f7", "zero now and later"),
+    Category(0, "stable", NO_CHANGE, "ceiling changes by less than the thresholds"),
+    Category(1, "release", "#2166ac", "ceiling rises by more than the release threshold"),  # ColorBrewer RdBu
+    Category(2, "constraint", "#e66101", "ceiling falls by more than the constraint threshold"),  # ColorBrewer PuOr
+    Category(3, "opens", "#92c5de", "zero now, above zero later"),  # ColorBrewer RdBu
+    Category(4, "closes", "#fdb863", "above zero now, zero later"),  # ColorBrewer PuOr
+    Category(5, "absent", "#8f8f8f", "zero now and later"),  # mid grey (our own)
 )
 ZONE_CODE = {c.name: c.code for c in ZONES}
 
 # the ensemble zone map adds one class: release or constraint on whose sign the models disagree
 ENSEMBLE_ZONES: tuple[Category, ...] = (
     *ZONES,
-    Category(6, "uncertain", "#c2a5cf", "release or constraint in the median, but the models disagree on the sign"),
+    Category(6, "uncertain", "#c2a5cf", "release or constraint in the median, but the models disagree on the sign"),  # ColorBrewer PRGn
 )
 ROBUSTNESS: tuple[Category, ...] = (
-    Category(0, "low agreement", "#bababa", "fewer models than the threshold agree on the sign of the change"),
-    Category(1, "robust", "#4d4d4d", "at least the threshold share of models agree on the sign of the change"),
+    Category(0, "low agreement", "#efe6cf", "fewer models than the threshold agree on the sign of the change"),  # our own
+    Category(1, "robust", "#4d4d4d", "at least the threshold share of models agree on the sign of the change"),  # ColorBrewer RdGy
 )
 EXTRAPOLATION: tuple[Category, ...] = (
-    Category(0, "within sampled range", "#f0f0f0", "MESS >= 0: every factor within the survey's range"),
-    Category(1, "novel climate", "#762a83", "MESS < 0: at least one factor outside the survey's range"),
+    Category(0, "within sampled range", "#efe6cf", "MESS >= 0: every factor within the survey's range"),  # our own
+    Category(1, "novel climate", "#762a83", "MESS < 0: at least one factor outside the survey's range"),  # ColorBrewer PRGn
 )
 
-FACTOR_COLOURS = ("#E69F00", "#56B4E9", "#009E73", "#F0E442", "#0072B2", "#D55E00", "#CC79A7", "#999999")
+# Okabe & Ito (2008): orange, sky blue, bluish green, yellow, blue, vermillion, reddish purple, black
+FACTOR_COLOURS = ("#E69F00", "#56B4E9", "#009E73", "#F0E442", "#0072B2", "#D55E00", "#CC79A7", "#000000")
 
 
 def factor_categories(factors: list[str]) -> tuple[Category, ...]:
@@ -71,7 +85,7 @@ def switch_categories(factors: list[str]) -> tuple[Category, ...]:
     for i, a in enumerate(factors):
         for j, b in enumerate(factors):
             name = f"{a} (unchanged)" if i == j else f"{a} -> {b}"
-            colour = "#bdbdbd" if i == j else FACTOR_COLOURS[j % len(FACTOR_COLOURS)]
+            colour = NO_CHANGE if i == j else FACTOR_COLOURS[j % len(FACTOR_COLOURS)]
             out.append(Category(switch_code(i, j, k), name, colour, f"limited by {a} now, by {b} later"))
     return tuple(out)
 

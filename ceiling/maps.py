@@ -57,6 +57,7 @@ from matplotlib.patches import Patch  # noqa: E402
 from rasterio.enums import Resampling  # noqa: E402
 
 from .categories import (  # noqa: E402
+    NODATA_GREY,
     Category,
     factor_categories,
     layer_categories,
@@ -84,7 +85,7 @@ __all__ = [
 
 DPI = 200
 MAX_SIDE = 1000  # cells read along the longer side of a grid; bigger grids are read decimated
-NODATA_BG = "#bdbdbd"  # neutral grey, apart from every class colour and the light ends of the scales
+NODATA_BG = NODATA_GREY  # apart from every class colour and the light ends of the scales (categories.py)
 OUTLINE = "#636363"
 GRATICULE = "#8c8c8c"
 HATCH_COLOUR = "#252525"
