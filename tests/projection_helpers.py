@@ -217,6 +217,23 @@ def demo_run(tmp_path_factory) -> tuple[Path, subprocess.CompletedProcess]:
     return out, res
 
 
+def small_run(tmp_path_factory) -> Path:
+    """A small two-species run with two climate models (so an ensemble), once per session, with
+    periods written as years (``1991-2020`` now, ``2041-2070`` later): the run folder."""
+    if "small" not in _DEMO:
+        root = tmp_path_factory.mktemp("small_run")
+        c = SmallCase(root / "case", ny=30, nx=40, futures=2)
+        futures = [dict(f, period="2041-2070") for f in c.futures]
+        cfg = c.data / "years.toml"
+        cfg.write_text(config_text(survey=c.survey, factors=c.factors(), futures=futures,
+                                   present={"period": "1991-2020"}, projection={"chunk": 64}), encoding="utf-8")
+        out = root / "run"
+        res = cli(["project", cfg, "--model", c.model, "--out", out])
+        assert res.exit_code == 0, res.output
+        _DEMO["small"] = out
+    return _DEMO["small"]
+
+
 # --- a small two-factor case with a hand-written model -------------------------------------------
 
 # temp: linear, eta = 60 - 2 T (center 10, scale 10, b = 40, -20), observed -5..40 degC

@@ -7,9 +7,10 @@
    under a lock, so the write streams and memory stays bounded by the chunk size.
 3. :func:`finalize_cog` copies the temporary file to a Cloud-Optimised GeoTIFF (GDAL's COG
    driver: tiled, deflate with a predictor, overviews) under a temporary name, renames it into
-   place, and then writes the ``.aux.xml`` sidecar (GDAL's PAM format) that carries category
-   names, which GDAL-based GIS programs display. The sidecar comes last because reopening a
-   file for writing deletes it.
+   place, and then, for categorical layers, writes the ``.aux.xml`` sidecar (GDAL's PAM format:
+   category names and attribute table) and the ``.qml`` layer style that make a GIS show exactly
+   the named classes (:mod:`ceiling.outputs.sidecars`). The sidecars come last because
+   reopening a file for writing deletes the ``.aux.xml``.
 """
 
 from __future__ import annotations
@@ -17,7 +18,6 @@ from __future__ import annotations
 import os
 from pathlib import Path
 from typing import Any
-from xml.sax.saxutils import escape
 
 import numpy as np
 import rasterio
@@ -25,7 +25,8 @@ import rasterio.shutil
 from rasterio.windows import Window
 
 from ..categories import Category, hex_to_rgba
-from .atomic import atomic_write_text, tmp_name
+from .atomic import tmp_name
+from .sidecars import pam_xml, write_category_sidecars
 
 __all__ = ["FLOAT_NODATA", "CODE_NODATA", "stream_tile", "cog_block", "create_tiled", "WindowTarget", "finalize_cog", "pam_xml"]
 
@@ -91,23 +92,6 @@ class WindowTarget:
             dst.write(value, 1, window=window)
 
 
-def pam_xml(categories: tuple[Category, ...], description: str) -> str:
-    """A GDAL PAM sidecar naming the categories (value i gets the i-th name)."""
-    top = max(c.code for c in categories)
-    names = {c.code: c.name for c in categories}
-    cats = "\n".join(f"      <Category>{escape(names.get(i, ''))}</Category>" for i in range(top + 1))
-    return (
-        "<PAMDataset>\n"
-        '  <PAMRasterBand band="1">\n'
-        f"    <Description>{escape(description)}</Description>\n"
-        "    <CategoryNames>\n"
-        f"{cats}\n"
-        "    </CategoryNames>\n"
-        "  </PAMRasterBand>\n"
-        "</PAMDataset>\n"
-    )
-
-
 def finalize_cog(
     tmp: Path, final: Path, *, categorical: bool, categories: tuple[Category, ...] | None = None,
     description: str = "",
@@ -124,7 +108,7 @@ def finalize_cog(
         )
     os.replace(staging, final)
     written = [final]
-    if categories is not None:
-        written.append(atomic_write_text(final.with_name(final.name + ".aux.xml"), pam_xml(categories, description)))
+    if categories is not None:  # names, attribute table and layer style (outputs/sidecars.py)
+        written += write_category_sidecars(final, categories, description)
     Path(tmp).unlink(missing_ok=True)
     return written

@@ -8,7 +8,7 @@ from pathlib import Path
 __all__ = [
     "MODEL_FILE", "DIAGNOSTICS_FILE", "FIGURES_DIR", "NETCDF_FILE", "SUMMARY_FILE", "TRANSITIONS_FILE",
     "MANIFEST_FILE", "PRESENT_LAYERS", "FUTURE_LAYERS", "ENSEMBLE_LAYERS", "ENSEMBLE", "fit_figure_name", "fit_panel_name", "safe_part",
-    "climate_dir", "layer_path",
+    "climate_dir", "layer_path", "aux_path", "style_path", "STAC_DIR", "STAC_ROOT_FILE", "stac_item_path",
 ]
 
 MODEL_FILE = "model.json"
@@ -51,3 +51,23 @@ def climate_dir(species: str, scenario: str, model: str, period: str) -> Path:
 
 def layer_path(species: str, climate_key: tuple[str, str, str], layer: str) -> Path:
     return climate_dir(species, *climate_key) / f"{layer}.tif"
+
+
+def aux_path(tif: Path) -> Path:
+    """GDAL's sidecar of a GeoTIFF (category names, attribute table): ``{name}.tif.aux.xml``."""
+    return Path(tif).with_name(Path(tif).name + ".aux.xml")
+
+
+def style_path(tif: Path) -> Path:
+    """The QGIS layer style beside a GeoTIFF, loaded as its default style: ``{name}.qml``."""
+    return Path(tif).with_suffix(".qml")
+
+
+# the STAC catalogue of a run folder (ceiling/outputs/stac.py)
+STAC_ROOT_FILE = "collection.json"
+STAC_DIR = "stac"
+
+
+def stac_item_path(item_id: str) -> Path:
+    """``stac/{item id}/{item id}.json`` (the layout STAC's best practices recommend)."""
+    return Path(STAC_DIR) / safe_part(item_id) / f"{safe_part(item_id)}.json"

@@ -36,8 +36,9 @@ import rasterio.shutil
 from rasterio.windows import Window
 
 from ..categories import Category, hex_to_rgba
-from .atomic import atomic_write_text, tmp_name
-from .geotiff import CODE_NODATA, FLOAT_NODATA, cog_block, pam_xml, stream_tile
+from .atomic import tmp_name
+from .geotiff import CODE_NODATA, FLOAT_NODATA, cog_block, stream_tile
+from .sidecars import write_category_sidecars
 
 __all__ = ["overview_levels", "decimate", "to_disk", "MapStream", "StreamReader", "COG_OPTIONS"]
 
@@ -225,7 +226,7 @@ class MapStream:
 
     def finalize(self, *, keep: bool = False) -> list[Path]:
         """Copy the map and its overviews into a COG at ``final`` (atomically); return the files
-        written (the COG and, for categories, its ``.aux.xml`` naming them). With ``keep`` the
+        written (the COG and, for categories, its ``.aux.xml`` and ``.qml``). With ``keep`` the
         uncompressed stream file stays, for :class:`StreamReader` (the caller removes it)."""
         _close_stream(self)
         w, h = self.grid.width, self.grid.height
@@ -254,9 +255,8 @@ class MapStream:
             for p in vrts:
                 p.unlink(missing_ok=True)
         written = [self.final]
-        if self.categories is not None:
-            written.append(atomic_write_text(self.final.with_name(self.final.name + ".aux.xml"),
-                                             pam_xml(self.categories, self.description)))
+        if self.categories is not None:  # names, attribute table, layer style (outputs/sidecars.py)
+            written += write_category_sidecars(self.final, self.categories, self.description)
         if not keep:
             self.path.unlink(missing_ok=True)
         return written
