@@ -460,6 +460,9 @@ def _project_to_folder(cfg: RunConfig, out: Path, cl: list[Climate], inputs: lis
         run.timings["figures_and_report"] = time.perf_counter() - t_report
         if progress:
             progress(f"wrote {n_figures} figures and report.html in {run.timings['figures_and_report']:.1f} s")
+        # the STAC catalogue of the folder (collection.json, stac/), listed in the manifest
+        from .outputs.stac import write_catalogue
+        write_catalogue(stage, title=cfg.name, species_factors={m.species: m.factor_names for m in models})
         checksums.close()
         sums.close()
         seconds = time.perf_counter() - t_start
