@@ -451,6 +451,11 @@ def _project_to_folder(cfg: RunConfig, out: Path, cl: list[Climate], inputs: lis
                 stage, species=[m.species for m in models], climates=[c.key for c in run.climates],
                 richness_threshold=community_opts.richness_threshold, chunk=projection_options(cfg).chunk,
                 threads=threads, progress=progress).seconds
+        # the STAC catalogue of the folder (collection.json, stac/), before the report and the manifest that list it
+        from .outputs.stac import write_catalogue
+        from .report import REPORT_FILE
+        write_catalogue(stage, title=cfg.name, species_factors={m.species: m.factor_names for m in models},
+                        to_come=(REPORT_FILE, MANIFEST_FILE))
         # figures and report.html (ceiling/maps.py, ceiling/report/), before the manifest that lists them
         from .maps import make_figures
         from .report import build_report
@@ -460,9 +465,6 @@ def _project_to_folder(cfg: RunConfig, out: Path, cl: list[Climate], inputs: lis
         run.timings["figures_and_report"] = time.perf_counter() - t_report
         if progress:
             progress(f"wrote {n_figures} figures and report.html in {run.timings['figures_and_report']:.1f} s")
-        # the STAC catalogue of the folder (collection.json, stac/), listed in the manifest
-        from .outputs.stac import write_catalogue
-        write_catalogue(stage, title=cfg.name, species_factors={m.species: m.factor_names for m in models})
         checksums.close()
         sums.close()
         seconds = time.perf_counter() - t_start

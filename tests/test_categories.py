@@ -95,3 +95,9 @@ def test_layer_categories_names_every_categorical_layer():
     assert layer_categories("zone", ["a"]) == ZONES
     assert layer_categories("zone", ["a"], ensemble=True) == ENSEMBLE_ZONES
     assert layer_categories("ceiling", ["a"]) is None
+
+
+def test_the_figures_draw_nodata_in_the_tested_grey():
+    from ceiling import maps
+
+    assert maps.NODATA_BG == NODATA_GREY

@@ -45,7 +45,7 @@ from .names import (
     stac_item_path,
 )
 
-__all__ = ["write_catalogue", "period_range", "class_name", "EXTENSIONS", "COG_TYPE"]
+__all__ = ["write_catalogue", "period_range", "class_name", "EXTENSIONS", "COG_TYPE", "MEDIA_TYPES"]
 
 COG_TYPE = "image/tiff; application=geotiff; profile=cloud-optimized"
 EXTENSIONS = {
@@ -53,13 +53,9 @@ EXTENSIONS = {
     "raster": "https://stac-extensions.github.io/raster/v1.1.0/schema.json",
     "classification": "https://stac-extensions.github.io/classification/v2.0.0/schema.json",
 }
-REPORT_FILE = "report.html"  # ceiling/report (not imported: the report imports matplotlib)
-RUN_FILES = {  # run-wide assets: file -> (media type, roles, title)
-    NETCDF_FILE: ("application/x-netcdf", ["data"], "every map of the run in one CF-1.10 NetCDF"),
-    MODEL_FILE: ("application/json", ["metadata"], "the fitted ceiling models"),
-    REPORT_FILE: ("text/html", ["overview"], "the run report"),
-    MANIFEST_FILE: ("application/json", ["metadata"], "inputs, outputs with checksums, versions, timing"),
-}
+MEDIA_TYPES = {".nc": "application/x-netcdf", ".json": "application/json", ".html": "text/html", ".csv": "text/csv"}
+TITLES = {NETCDF_FILE: "every map of the run in one CF-1.10 NetCDF", MODEL_FILE: "the fitted ceiling models",
+          MANIFEST_FILE: "inputs, outputs with checksums, versions, timing", "report.html": "the run report"}
 CAUTION = ("A ceiling is a potential upper limit of abundance, not a forecast; results need expert review, and "
            "decisions defer to local regulations and agency guidance.")
 _YEARS = re.compile(r"^\s*(\d{4})\s*(?:[-/]\s*(\d{4}))?\s*$")
@@ -168,9 +164,11 @@ def _description(left_out: Sequence[ClimateFolder]) -> str:
     return text
 
 
-def write_catalogue(root: Path, *, title: str, species_factors: dict[str, Sequence[str]]) -> list[Path]:
+def write_catalogue(root: Path, *, title: str, species_factors: dict[str, Sequence[str]],
+                    to_come: Sequence[str] = ()) -> list[Path]:
     """Write ``collection.json`` and the items under ``stac/`` in the run folder ``root``;
-    return the files written. ``species_factors``: each species' factors in code order."""
+    return the files written. ``species_factors``: each species' factors in code order;
+    ``to_come``: run-wide files written after the catalogue (listed as assets all the same)."""
     root = Path(root)
     folders = _climate_folders(root, list(species_factors))
     spans = {c.item_id: period_range(c.period) for c in folders}
@@ -184,12 +182,12 @@ def write_catalogue(root: Path, *, title: str, species_factors: dict[str, Sequen
                            pystac.TemporalExtent([[min(starts), max(ends)] if starts else [None, None]]))
     coll = pystac.Collection(id=class_name(title), title=title, description=_description(
         [c for c in folders if spans[c.item_id] is None]), extent=extent, license="other")
-    for name, (media, roles, what) in RUN_FILES.items():  # hrefs relative to collection.json
-        if (root / name).is_file() or name == MANIFEST_FILE:  # the manifest is written last
-            coll.add_asset(Path(name).stem, pystac.Asset(href=f"./{name}", media_type=media, roles=roles, title=what))
-    for table in sorted(root.glob("*.csv")):
-        coll.add_asset(table.stem, pystac.Asset(href=f"./{table.name}", media_type="text/csv", roles=["data"],
-                                                title=table.name))
+    present = [p.name for p in sorted(root.iterdir()) if p.is_file() and p.suffix in MEDIA_TYPES
+               and not p.name.startswith(".") and p.name != STAC_ROOT_FILE]
+    for name in sorted(set(present) | set(to_come)):  # hrefs relative to collection.json
+        role = "data" if Path(name).suffix in (".nc", ".csv") else "overview" if name.endswith(".html") else "metadata"
+        coll.add_asset(Path(name).stem, pystac.Asset(href=f"./{name}", media_type=MEDIA_TYPES[Path(name).suffix],
+                                                     roles=[role], title=TITLES.get(name, name)))
     coll.set_self_href(str(root / STAC_ROOT_FILE))
     for item in items:
         coll.add_item(item)
