@@ -36,7 +36,7 @@ def qgis_available() -> bool:
     return res.returncode == 0
 
 
-pytestmark = pytest.mark.skipif(
+needs_qgis = pytest.mark.skipif(
     not qgis_available(),
     reason="QGIS is not installed (Debian: apt-get install -y qgis python3-qgis; see the README's test command)")
 
@@ -89,6 +89,7 @@ def test_every_category_layer_is_in_the_table(run):
                 assert tif in maps, f"{tif} is uint8 but has no category table"
 
 
+@needs_qgis
 def test_qgis_shows_exactly_the_named_classes_in_our_colours(run, seen):
     maps = categorical_maps(run)
     assert seen["qgis"].startswith("3."), seen["qgis"]
@@ -102,6 +103,7 @@ def test_qgis_shows_exactly_the_named_classes_in_our_colours(run, seen):
         assert got["classes"] == expected, (where, got["classes"])
 
 
+@needs_qgis
 def test_qgis_draws_each_cell_in_its_class_colour_and_nodata_transparent(run, seen):
     n_checked = 0
     for tif, cats in categorical_maps(run).items():
@@ -117,6 +119,7 @@ def test_qgis_draws_each_cell_in_its_class_colour_and_nodata_transparent(run, se
     assert n_checked >= 40  # classes drawn, summed over the maps: most maps show several
 
 
+@needs_qgis
 def test_without_the_style_file_the_gis_falls_back_to_what_gdal_offers(run, tmp_path):
     """QGIS 3.22 then makes a class of each of the colour table's 256 entries (why the style file
     is written); QGIS 3.30 and later build the legend from the attribute table in the .aux.xml."""
@@ -132,3 +135,23 @@ def test_without_the_style_file_the_gis_falls_back_to_what_gdal_offers(run, tmp_
         assert [c[1] for c in got["classes"]] == [c.name for c in cats]
     else:
         assert len(got["classes"]) == 256
+
+
+def test_gdalinfo_reads_names_colours_and_the_attribute_table(run):
+    """Debian's gdalinfo (a GDAL build apart from rasterio's) reads the .aux.xml: category names,
+    the 256-entry colour table with transparent nodata, and the attribute table (one map of each
+    kind)."""
+    exe = shutil.which("gdalinfo")
+    if exe is None:
+        pytest.skip("gdalinfo (Debian gdal-bin) is not installed")
+    kinds = {(p.stem, ENSEMBLE in p.parts): (p, c) for p, c in categorical_maps(run).items()}
+    for tif, cats in kinds.values():
+        res = subprocess.run([exe, "-json", str(tif)], capture_output=True, text=True, timeout=60)
+        doc = json.loads(res.stdout)
+        band = doc["bands"][0]
+        assert band["categories"] == [c.name for c in cats] and band["noDataValue"] == 255
+        assert band["colorTable"]["entries"][255] == [0, 0, 0, 0]
+        rat = doc["rat"]
+        assert rat["tableType"] == "thematic"
+        assert [f["name"] for f in rat["fieldDefn"]] == ["value", "class", "red", "green", "blue", "alpha"]
+        assert [r["f"] for r in rat["row"]] == [[c.code, c.name, *hex_to_rgba(c.colour)] for c in cats]
