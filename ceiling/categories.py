@@ -11,7 +11,7 @@ online tool for selecting colour schemes for maps", The Cartographic Journal 40(
 beside each colour below (the 11-class schemes that matplotlib ships list them, except
 ``#e66101``, which is in PuOr's 3- to 5-class schemes, from memory). The neutral classes
 ("stable", "unchanged", "absent", "low agreement", "within sampled range") are our own choice: a
-pale sand and a mid grey, chosen so that every class differs clearly from the grey that marks
+pale sand and a taupe, chosen so that every class differs clearly from the grey that marks
 no data in the figures (:data:`NODATA_GREY`) and from white, the usual GIS canvas behind the
 transparent nodata cells (CIEDE2000 >= 10: ``tests/test_categories.py``). Factor colours: the
 colour-blind-safe qualitative palette of Okabe & Ito (2008, "Color Universal Design"),
@@ -44,7 +44,7 @@ ZONES: tuple[Category, ...] = (
     Category(2, "constraint", "#e66101", "ceiling falls by more than the constraint threshold"),  # ColorBrewer PuOr
     Category(3, "opens", "#92c5de", "zero now, above zero later"),  # ColorBrewer RdBu
     Category(4, "closes", "#fdb863", "above zero now, zero later"),  # ColorBrewer PuOr
-    Category(5, "absent", "#8f8f8f", "zero now and later"),  # mid grey (our own)
+    Category(5, "absent", "#8c7b6b", "zero now and later"),  # taupe (our own)
 )
 ZONE_CODE = {c.name: c.code for c in ZONES}
 
