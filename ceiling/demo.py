@@ -27,6 +27,8 @@ from rasterio import Affine
 from rasterio.crs import CRS
 from scipy import ndimage
 
+from .demo_climate import FACTOR_DEFINITIONS, SERIES_MODEL, make_baseline, present_factors, write_series
+
 __all__ = [
     "DEFAULT_SEED", "FACTORS", "SCENARIOS", "MODELS", "PERIODS", "NODATA", "TRANSFORM",
     "make_demo", "make_land", "make_present", "make_future", "ceiling_curve", "true_ceiling",
@@ -41,16 +43,17 @@ NOTE = "invented demo data"
 TEXT: dict[str, Any] = {"encoding": "utf-8", "newline": "\n"}  # same bytes on every platform
 
 FACTORS: dict[str, dict[str, str]] = {
-    "tmax_warm": {"units": "degC", "long_name": "maximum temperature of the warmest month"},
-    "tmin_cold": {"units": "degC", "long_name": "minimum temperature of the coldest month"},
-    "precip": {"units": "mm year-1", "long_name": "annual precipitation"},
+    "tmax_warm": {"units": "degC", "long_name": "hottest-month daily maximum"},
+    "tmin_cold": {"units": "degC", "long_name": "coldest-month daily minimum"},
+    "precip": {"units": "mm year-1", "long_name": "yearly precipitation total"},
     "moisture": {
         "units": "1",
-        "long_name": "moisture index (precipitation over potential evapotranspiration)",
+        "long_name": "moisture index: yearly precipitation over potential evapotranspiration (Hargreaves)",
     },
 }
+# land ranges of the generated fields; moisture is derived from the monthly baseline (about 0.2 to 3)
 RANGES = {"tmax_warm": (16.0, 34.0), "tmin_cold": (-8.0, 8.0), "precip": (300.0, 2500.0),
-          "moisture": (0.2, 2.0)}
+          "humidity": (0.0, 1.0)}
 SCENARIOS = ("ssp245", "ssp585")
 MODELS = ("model-a", "model-b", "model-c")
 PERIODS = ("2041-2070", "2071-2100")
@@ -87,7 +90,7 @@ SPECIES: dict[str, dict[str, Any]] = {
             "tmax_warm": {"form": "flat", "params": {"level": 100.0}},
             "tmin_cold": {"form": "linear", "params": {"intercept": 30.0, "slope": 4.0}},
             "precip": {"form": "linear", "params": {"intercept": -30.0, "slope": 0.035}},
-            "moisture": {"form": "linear", "params": {"intercept": -20.0, "slope": 50.0}},
+            "moisture": {"form": "linear", "params": {"intercept": -20.0, "slope": 35.0}},
         },
     },
     "sp_c": {
@@ -98,7 +101,7 @@ SPECIES: dict[str, dict[str, Any]] = {
             "tmin_cold": {"form": "flat", "params": {"level": 120.0}},
             "precip": {"form": "quadratic",
                        "params": {"peak": 80.0, "optimum": 1200.0, "curvature": 1.0e-4}},
-            "moisture": {"form": "linear", "params": {"intercept": 150.0, "slope": -90.0}},
+            "moisture": {"form": "linear", "params": {"intercept": 150.0, "slope": -60.0}},
         },
     },
 }
@@ -140,8 +143,9 @@ def make_land(seed: int) -> np.ndarray:
     return land
 
 
-def make_present(land: np.ndarray, seed: int) -> dict[str, np.ndarray]:
-    """Present-day climate factors (float64, NaN over sea)."""
+def make_fields(land: np.ndarray, seed: int) -> dict[str, np.ndarray]:
+    """The generated fields behind the baseline (float64, NaN over sea): the warmest month's maximum,
+    the coldest month's minimum, the yearly precipitation and a humidity field (0..1)."""
     rng = _rng(seed, 2)
     rows, cols = np.mgrid[0:HEIGHT, 0:WIDTH]
     north, east = 1.0 - rows / (HEIGHT - 1), cols / (WIDTH - 1)
@@ -153,13 +157,25 @@ def make_present(land: np.ndarray, seed: int) -> dict[str, np.ndarray]:
         "tmax_warm": 1.6 * north + 0.6 * inland - 0.6 * relief + 0.3 * noise[0],
         "tmin_cold": 0.4 * east + 0.3 * north - 1.2 * inland + 0.35 * noise[1],
         "precip": 1.2 * (1.0 - east) + 0.1 * relief + 0.35 * noise[2],
-        "moisture": 1.4 * (1.0 - north) + 0.4 * (1.0 - east) + 0.3 * noise[3],
+        "humidity": 1.4 * (1.0 - north) + 0.4 * (1.0 - east) + 0.3 * noise[3],
     }
     out = {}
     for name, field in raw.items():
         lo, hi = RANGES[name]
         out[name] = np.where(land, _rescale(field, land, lo, hi), np.nan)
     return out
+
+
+def make_monthly(land: np.ndarray, seed: int) -> dict[str, np.ndarray]:
+    """The invented fine monthly baseline: (12, rows, cols) tasmax, tasmin (degC), pr (mm per month)."""
+    return make_baseline(make_fields(land, seed), land, _rng(seed, 5), _smooth_noise)
+
+
+def make_present(land: np.ndarray, seed: int, monthly: dict[str, np.ndarray] | None = None) -> dict[str, np.ndarray]:
+    """Present-day climate factors (float64 of the stored float32, NaN over sea), derived from the
+    monthly baseline by the same factor definitions as every derived future."""
+    monthly = make_monthly(land, seed) if monthly is None else monthly
+    return present_factors(monthly, NORTH - CELL * (np.arange(HEIGHT) + 0.5), land)
 
 
 def make_future(present: dict[str, np.ndarray], land: np.ndarray, seed: int, scenario: str,
@@ -183,10 +199,16 @@ def make_future(present: dict[str, np.ndarray], land: np.ndarray, seed: int, sce
     }
 
 
-def _write_tif(path: Path, data: np.ndarray, factor: str, tags: dict[str, str]) -> None:
-    """Write one factor as a float32 single-band GeoTIFF with its units and description."""
+BASELINE_META = {"tasmax": {"units": "degC", "long_name": "monthly mean of the daily maximum temperature"},
+                 "tasmin": {"units": "degC", "long_name": "monthly mean of the daily minimum temperature"},
+                 "pr": {"units": "mm", "long_name": "monthly precipitation total"}}
+
+
+def _write_tif(path: Path, data: np.ndarray, factor: str, tags: dict[str, str],
+               meta: dict[str, str] | None = None) -> None:
+    """Write one factor (or baseline month) as a float32 single-band GeoTIFF with its units and description."""
     path.parent.mkdir(parents=True, exist_ok=True)
-    meta = FACTORS[factor]
+    meta = FACTORS[factor] if meta is None else meta
     profile = dict(driver="GTiff", width=WIDTH, height=HEIGHT, count=1, dtype="float32",
                    crs=CRS.from_epsg(4326), transform=TRANSFORM, nodata=NODATA,
                    compress="deflate", predictor=3, tiled=True, blockxsize=64, blockysize=64)
@@ -367,13 +389,13 @@ def write_demo_zones(path: str | Path) -> Path:
     return path
 
 
-def _readme(seed: int, land_share: float) -> str:
+def _readme(seed: int, land_share: float, ranges: dict[str, tuple[float, float]]) -> str:
     """The README of the output folder."""
     species = "\n".join(f"- `{code}` ({sp['label']}), {sp['n_sites']} sites:\n  "
                         + ", ".join(f"{f} {c['form']}" for f, c in sp["curves"].items())
                         for code, sp in SPECIES.items())
-    factors = "\n".join(f"| `{f}` | {m['long_name']} | `{m['units']}` | {RANGES[f][0]:g} to "
-                        f"{RANGES[f][1]:g} |" for f, m in FACTORS.items())
+    factors = "\n".join(f"| `{f}` | {m['long_name']} | `{m['units']}` | {ranges[f][0]:.3g} to "
+                        f"{ranges[f][1]:.3g} |" for f, m in FACTORS.items())
     return f"""# Demo grids: an INVENTED island
 
 Everything here is **invented**: the island, its climate, the climate models and the three
@@ -437,8 +459,15 @@ def make_demo(out_dir: str | Path, *, seed: int = DEFAULT_SEED) -> dict[str, Any
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     land = make_land(seed)
-    present = make_present(land, seed)
+    monthly = make_monthly(land, seed)
+    present = make_present(land, seed, monthly)
     written: list[Path] = []
+    for var, months in monthly.items():
+        for m in range(12):
+            written.append(out / "baseline" / f"{var}_{m + 1:02d}.tif")
+            _write_tif(written[-1], months[m], var, {"period": "1991-2020", "month": f"{m + 1:02d}"},
+                       BASELINE_META[var])
+    written += write_series(out, seed, WARMING, SCENARIOS)
     for factor, data in present.items():
         written.append(out / "present" / f"{factor}.tif")
         _write_tif(written[-1], data, factor, {"period": "present"})
@@ -466,7 +495,8 @@ def make_demo(out_dir: str | Path, *, seed: int = DEFAULT_SEED) -> dict[str, Any
                     for code, sp in SPECIES.items()},
     }
     (out / "truth.json").write_text(json.dumps(truth, indent=2) + "\n", **TEXT)
-    (out / "README.md").write_text(_readme(seed, float(land.mean())), **TEXT)
+    ranges = {f: (float(np.nanmin(v)), float(np.nanmax(v))) for f, v in present.items()}
+    (out / "README.md").write_text(_readme(seed, float(land.mean()), ranges), **TEXT)
     written += [survey, out / "truth.json", out / "README.md", write_demo_zones(out / DEMO_ZONES)]
     return {"out_dir": str(out), "files": [str(p) for p in written],
             "n_files": len(written), "land_cells": int(land.sum()),
