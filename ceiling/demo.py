@@ -5,9 +5,10 @@ region lies in open ocean (lon -140..-130, lat -48..-40) so that no real place i
 land, the climate, the three species and their survey are all invented and carry no
 information about any real place, species or study.
 
-The scenario exercises the whole tool: four climate factors on a present-day grid, futures for
-two emission scenarios, three climate models and two periods (one model delivers CF NetCDF in
-other units), a survey of counts for three species, and the true per-factor ceilings that
+The scenario exercises the whole tool: a fine monthly baseline, four climate factors derived
+from it on a present-day grid (:mod:`ceiling.demo_climate`), futures for two emission scenarios,
+four climate models and two periods (one model delivers CF NetCDF in other units, one raw monthly
+series from which the factors are derived), a survey of counts for three species, and the true per-factor ceilings that
 generated the counts, combined by the law of the minimum, so that a fit can be checked against
 the truth. It also holds invented zones (fictional reserves and management units, ``zones.gpkg``)
 for the zonal summaries.
@@ -391,11 +392,13 @@ def write_demo_zones(path: str | Path) -> Path:
 
 def _readme(seed: int, land_share: float, ranges: dict[str, tuple[float, float]]) -> str:
     """The README of the output folder."""
+    definitions = ", ".join(f"`{f}` = `{d['index']}`" for f, d in FACTOR_DEFINITIONS.items())
+    series_model = SERIES_MODEL
     species = "\n".join(f"- `{code}` ({sp['label']}), {sp['n_sites']} sites:\n  "
                         + ", ".join(f"{f} {c['form']}" for f, c in sp["curves"].items())
                         for code, sp in SPECIES.items())
-    factors = "\n".join(f"| `{f}` | {m['long_name']} | `{m['units']}` | {ranges[f][0]:.3g} to "
-                        f"{ranges[f][1]:.3g} |" for f, m in FACTORS.items())
+    factors = "\n".join(f"| `{f}` | {m['long_name']} | `{m['units']}` | {ranges[f][0]:.4g} to "
+                        f"{ranges[f][1]:.4g} |" for f, m in FACTORS.items())
     return f"""# Demo grids: an INVENTED island
 
 Everything here is **invented**: the island, its climate, the climate models and the three
@@ -422,13 +425,24 @@ rows, north-up. Land is {100 * land_share:.1f} % of the cells; sea cells are nod
 
 ## Files
 
-- `present/{{factor}}.tif`: present-day layers, float32 GeoTIFF, nodata -9999, deflate.
+- `baseline/{{variable}}_{{month}}.tif`: the invented fine monthly baseline (1991-2020 normals),
+  12 months (`01`..`12`) each of `tasmax` and `tasmin` (monthly means of the daily maximum and
+  minimum temperature, `degC`) and `pr` (monthly precipitation total, `mm`), on the grid above.
+- `present/{{factor}}.tif`: present-day layers, float32 GeoTIFF, nodata -9999, deflate, derived
+  from the baseline by the factor definitions of `configs/demo.toml` (`[derive.factors]`:
+  {definitions}), so `ceiling derive` reproduces them exactly.
 - `future/{{scenario}}/{{model}}/{{period}}/{{factor}}.tif` for `model-a` and `model-b`, same
-  format and units as the present.
+  format and units as the present (ready-made factor layers).
 - `future/{{scenario}}/model-c/{{period}}.nc`: CF-1.10 NetCDF, one variable per factor on
   dims (lat, lon), **lat descending** (north first, as the GeoTIFFs), cell-centre coordinates,
   `_FillValue` -9999, grid mapping `crs`. Units differ on purpose: temperatures in `K`,
   precipitation as a flux in `kg m-2 s-1` (= mm year-1 / 31556925.9747, seconds in the UDUNITS year), moisture `1`.
+- `series/{series_model}/{{run}}/{{variable}}_mon_{series_model}_{{run}}_{{start}}-{{end}}.nc`: the invented
+  climate model `{series_model}` as raw monthly series (`tasmax`, `tasmin` in `K`, `pr` in `kg m-2 s-1`),
+  CF-1.10 NetCDF on a coarse 1-degree grid (longitudes 0-360, latitudes ascending), `noleap`
+  calendar with time bounds, one file per variable and span of years: `historical` 1991-2020,
+  `ssp245` and `ssp585` 2041-2070 and 2071-2100. Its factor layers are derived on the way
+  (change factors on the baseline: `ceiling derive`, or `ceiling run` directly).
 - `survey.csv`: `site_id,species,lon,lat,count`, one row per site and species; each species
   was surveyed at its own random land sites.
 - `truth.json`: the true ceiling curve of every species and factor, and the noise model.
@@ -437,7 +451,8 @@ rows, north-up. Land is {100 * land_share:.1f} % of the cells; sea cells are nod
   management units of the invented island, layer `zones`, EPSG:4326, attributes `id`, `name`,
   `kind` and `note`. The names are made up and refer to no real place.
 
-Scenarios: {", ".join(SCENARIOS)}. Models: {", ".join(MODELS)}. Periods: {", ".join(PERIODS)}.
+Scenarios: {", ".join(SCENARIOS)}. Models: {", ".join(MODELS)} (ready-made layers) and {series_model}
+(raw series). Periods: {", ".join(PERIODS)}.
 Futures warm everywhere and precipitation changes by -25 % to +15 %, so part of the island
 has climates outside the present range.
 
