@@ -28,7 +28,7 @@ from rasterio import Affine
 from rasterio.crs import CRS
 from scipy import ndimage
 
-from .demo_climate import FACTOR_DEFINITIONS, SERIES_MODEL, make_baseline, present_factors, write_series
+from .demo_climate import FACTOR_DEFINITIONS, SERIES_MODEL, make_baseline, write_series
 
 __all__ = [
     "DEFAULT_SEED", "FACTORS", "SCENARIOS", "MODELS", "PERIODS", "NODATA", "TRANSFORM",
@@ -52,9 +52,8 @@ FACTORS: dict[str, dict[str, str]] = {
         "long_name": "moisture index: yearly precipitation over potential evapotranspiration (Hargreaves)",
     },
 }
-# land ranges of the generated fields; moisture is derived from the monthly baseline (about 0.2 to 3)
 RANGES = {"tmax_warm": (16.0, 34.0), "tmin_cold": (-8.0, 8.0), "precip": (300.0, 2500.0),
-          "humidity": (0.0, 1.0)}
+          "moisture": (0.2, 2.0)}
 SCENARIOS = ("ssp245", "ssp585")
 MODELS = ("model-a", "model-b", "model-c")
 PERIODS = ("2041-2070", "2071-2100")
@@ -91,7 +90,7 @@ SPECIES: dict[str, dict[str, Any]] = {
             "tmax_warm": {"form": "flat", "params": {"level": 100.0}},
             "tmin_cold": {"form": "linear", "params": {"intercept": 30.0, "slope": 4.0}},
             "precip": {"form": "linear", "params": {"intercept": -30.0, "slope": 0.035}},
-            "moisture": {"form": "linear", "params": {"intercept": -20.0, "slope": 35.0}},
+            "moisture": {"form": "linear", "params": {"intercept": -20.0, "slope": 50.0}},
         },
     },
     "sp_c": {
@@ -102,7 +101,7 @@ SPECIES: dict[str, dict[str, Any]] = {
             "tmin_cold": {"form": "flat", "params": {"level": 120.0}},
             "precip": {"form": "quadratic",
                        "params": {"peak": 80.0, "optimum": 1200.0, "curvature": 1.0e-4}},
-            "moisture": {"form": "linear", "params": {"intercept": 150.0, "slope": -60.0}},
+            "moisture": {"form": "linear", "params": {"intercept": 150.0, "slope": -90.0}},
         },
     },
 }
@@ -144,9 +143,8 @@ def make_land(seed: int) -> np.ndarray:
     return land
 
 
-def make_fields(land: np.ndarray, seed: int) -> dict[str, np.ndarray]:
-    """The generated fields behind the baseline (float64, NaN over sea): the warmest month's maximum,
-    the coldest month's minimum, the yearly precipitation and a humidity field (0..1)."""
+def make_present(land: np.ndarray, seed: int) -> dict[str, np.ndarray]:
+    """Present-day climate factors (float64, NaN over sea)."""
     rng = _rng(seed, 2)
     rows, cols = np.mgrid[0:HEIGHT, 0:WIDTH]
     north, east = 1.0 - rows / (HEIGHT - 1), cols / (WIDTH - 1)
@@ -158,7 +156,7 @@ def make_fields(land: np.ndarray, seed: int) -> dict[str, np.ndarray]:
         "tmax_warm": 1.6 * north + 0.6 * inland - 0.6 * relief + 0.3 * noise[0],
         "tmin_cold": 0.4 * east + 0.3 * north - 1.2 * inland + 0.35 * noise[1],
         "precip": 1.2 * (1.0 - east) + 0.1 * relief + 0.35 * noise[2],
-        "humidity": 1.4 * (1.0 - north) + 0.4 * (1.0 - east) + 0.3 * noise[3],
+        "moisture": 1.4 * (1.0 - north) + 0.4 * (1.0 - east) + 0.3 * noise[3],
     }
     out = {}
     for name, field in raw.items():
@@ -167,16 +165,19 @@ def make_fields(land: np.ndarray, seed: int) -> dict[str, np.ndarray]:
     return out
 
 
-def make_monthly(land: np.ndarray, seed: int) -> dict[str, np.ndarray]:
-    """The invented fine monthly baseline: (12, rows, cols) tasmax, tasmin (degC), pr (mm per month)."""
-    return make_baseline(make_fields(land, seed), land, _rng(seed, 5), _smooth_noise)
+def make_monthly(land: np.ndarray, seed: int, present: dict[str, np.ndarray] | None = None) -> dict[str, np.ndarray]:
+    """The invented fine monthly baseline, (12, rows, cols): tasmax, tasmin (degC), pr (mm per month).
 
-
-def make_present(land: np.ndarray, seed: int, monthly: dict[str, np.ndarray] | None = None) -> dict[str, np.ndarray]:
-    """Present-day climate factors (float64 of the stored float32, NaN over sea), derived from the
-    monthly baseline by the same factor definitions as every derived future."""
-    monthly = make_monthly(land, seed) if monthly is None else monthly
-    return present_factors(monthly, NORTH - CELL * (np.arange(HEIGHT) + 0.5), land)
+    Built from the present factors so that the baseline's hottest-month maximum, coldest-month
+    minimum and yearly total are those layers (to float32 rounding); the moisture layer sets its
+    daily temperature range (humid air, small range). A moisture index computed from any plausible
+    monthly baseline (precipitation over Hargreaves PET) cannot reproduce the invented moisture
+    layer (it would need a PET of up to 8,700 mm a year), so the demo anchors (``[derive] anchor``):
+    each derived change is computed within this baseline and applied to the present layers.
+    """
+    present = make_present(land, seed) if present is None else present
+    fields = {**present, "humidity": (present["moisture"] - RANGES["moisture"][0]) / np.ptp(RANGES["moisture"])}
+    return make_baseline(fields, land, _rng(seed, 5), _smooth_noise)
 
 
 def make_future(present: dict[str, np.ndarray], land: np.ndarray, seed: int, scenario: str,
@@ -428,9 +429,12 @@ rows, north-up. Land is {100 * land_share:.1f} % of the cells; sea cells are nod
 - `baseline/{{variable}}_{{month}}.tif`: the invented fine monthly baseline (1991-2020 normals),
   12 months (`01`..`12`) each of `tasmax` and `tasmin` (monthly means of the daily maximum and
   minimum temperature, `degC`) and `pr` (monthly precipitation total, `mm`), on the grid above.
-- `present/{{factor}}.tif`: present-day layers, float32 GeoTIFF, nodata -9999, deflate, derived
-  from the baseline by the factor definitions of `configs/demo.toml` (`[derive.factors]`:
-  {definitions}), so `ceiling derive` reproduces them exactly.
+- `present/{{factor}}.tif`: present-day layers, float32 GeoTIFF, nodata -9999, deflate. The
+  baseline's own factors by the definitions of `configs/demo.toml` (`[derive.factors]`:
+  {definitions}) equal `tmax_warm`, `tmin_cold` and `precip` (to float32 rounding); the invented
+  moisture layer is finer than any moisture index of the baseline, so the demo anchors
+  (`[derive] anchor = true`): each derived future is the present layer with the factor's change
+  within the baseline applied (added; multiplied for `precip` and `moisture`).
 - `future/{{scenario}}/{{model}}/{{period}}/{{factor}}.tif` for `model-a` and `model-b`, same
   format and units as the present (ready-made factor layers).
 - `future/{{scenario}}/model-c/{{period}}.nc`: CF-1.10 NetCDF, one variable per factor on
@@ -474,8 +478,8 @@ def make_demo(out_dir: str | Path, *, seed: int = DEFAULT_SEED) -> dict[str, Any
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     land = make_land(seed)
-    monthly = make_monthly(land, seed)
-    present = make_present(land, seed, monthly)
+    present = make_present(land, seed)
+    monthly = make_monthly(land, seed, present)
     written: list[Path] = []
     for var, months in monthly.items():
         for m in range(12):

@@ -16,8 +16,12 @@ which xclim turns back into the total).
 | ``annual_precipitation`` | yearly precipitation total (mm) | ``xclim.indices.prcptot`` |
 | ``wettest_quarter_precipitation`` / ``driest_quarter_precipitation`` | precipitation of the wettest / driest three consecutive months, December-February included (mm) | ``xclim.indices.prcptot_wetdry_quarter`` on the year repeated twice (so the three months may span the year's end), second year kept |
 | ``temperature_seasonality`` | coefficient of variation of the monthly mean temperatures in kelvin (%) | ``xclim.indices.temperature_seasonality`` |
-| ``growing_degree_days`` | degree days above ``base`` (degC d), estimated from monthly means | ``xclim.indices.growing_degree_days`` on the monthly means: each month adds ``max(T - base, 0)`` times one twelfth of a year (30.44 days); this underestimates where daily temperatures straddle the base within a month (common practice) |
+| ``growing_degree_days`` | degree days above ``base`` (K d), estimated from monthly means | ``xclim.indices.growing_degree_days`` on the monthly means: each month adds ``max(T - base, 0)`` times one twelfth of a year (30.44 days); this underestimates where daily temperatures straddle the base within a month (common practice) |
 | ``moisture_index`` | yearly precipitation over yearly potential evapotranspiration (1) | PET by :mod:`ceiling.derive.pet` (method ``pet``); the ratio is our own code |
+
+With ``[derive] anchor = true`` a factor's change (future minus baseline value, or their ratio for
+the precipitation totals and the moisture index: ``change`` below) is applied to a given present
+layer instead (:mod:`ceiling.derive.stage`).
 
 Mean temperature is the monthly ``tas`` when the baseline has it, else the mean of ``tasmax`` and
 ``tasmin`` (common practice). Daily-only indices (frost days, degree days from daily values) are
@@ -66,6 +70,7 @@ class IndexSpec:
     needs: tuple[str, ...]
     computed_by: str
     func: Callable[[MonthlyFields, dict], np.ndarray]
+    change: str = "additive"  # how a change of this index is applied to a given present layer (anchoring)
 
 
 def _da(values: np.ndarray, units: str, years: int = 1) -> xr.DataArray:
@@ -108,25 +113,25 @@ INDICES: dict[str, IndexSpec] = {
         lambda f, p: _xclim("tg_mean", _da(f.tas, "degC"), convert="degC")),
     "annual_precipitation": IndexSpec(
         "yearly precipitation total", "mm year-1", ("pr",), "xclim.indices.prcptot",
-        lambda f, p: _xclim("prcptot", _rate(f.pr), convert="mm")),
+        lambda f, p: _xclim("prcptot", _rate(f.pr), convert="mm"), "multiplicative"),
     "wettest_quarter_precipitation": IndexSpec(
         "precipitation of the wettest three months in a row", "mm", ("pr",), "xclim.indices.prcptot_wetdry_quarter",
-        lambda f, p: _xclim("prcptot_wetdry_quarter", _rate(f.pr, 2), op="wettest", convert="mm")),
+        lambda f, p: _xclim("prcptot_wetdry_quarter", _rate(f.pr, 2), op="wettest", convert="mm"), "multiplicative"),
     "driest_quarter_precipitation": IndexSpec(
         "precipitation of the driest three months in a row", "mm", ("pr",), "xclim.indices.prcptot_wetdry_quarter",
-        lambda f, p: _xclim("prcptot_wetdry_quarter", _rate(f.pr, 2), op="driest", convert="mm")),
+        lambda f, p: _xclim("prcptot_wetdry_quarter", _rate(f.pr, 2), op="driest", convert="mm"), "multiplicative"),
     "temperature_seasonality": IndexSpec(
         "spread of the monthly mean temperatures (coefficient of variation)", "%", ("tasmax", "tasmin"),
         "xclim.indices.temperature_seasonality",
         lambda f, p: _xclim("temperature_seasonality", _da(f.tas, "degC"))),
     "growing_degree_days": IndexSpec(
-        "degree days above a base temperature, from monthly means", "degC d", ("tasmax", "tasmin"),
+        "degree days above a base temperature, from monthly means", "K d", ("tasmax", "tasmin"),
         "xclim.indices.growing_degree_days (monthly means)",
         lambda f, p: _xclim("growing_degree_days", _da(f.tas, "degC"), thresh=f"{p.get('base', 5.0)} degC",
                             convert="K d")),
     "moisture_index": IndexSpec(
         "moisture index: yearly precipitation over potential evapotranspiration", "1", ("tasmax", "tasmin", "pr"),
-        "ceiling.derive.indices (ratio) over ceiling.derive.pet", _moisture),
+        "ceiling.derive.indices (ratio) over ceiling.derive.pet", _moisture, "multiplicative"),
 }
 
 

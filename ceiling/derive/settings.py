@@ -10,6 +10,7 @@
     interpolation = "bilinear"        # or "nearest": coarse changes to the fine grid
     precip_cap = 3.0                  # largest multiplicative precipitation change
     precip_floor = 3.0                # mm per month: least historical monthly total in a ratio
+    anchor = false                    # true: apply each factor's change to the present layers
 
     [derive.factors]                  # one definition per factor of [[factors]], by index name
     tmax_warm = { index = "warmest_month_tmax" }
@@ -70,6 +71,10 @@ class DeriveSection(_Strict):
     precip_floor: float = Field(default=3.0, gt=0.0)
     chunk: int = Field(default=512, ge=64, le=8192)
     template: str | None = None
+    # false: every layer is the factor of the (adjusted) baseline; true: the present is the config's
+    # present layers and each future is that layer with the factor's change from the baseline
+    # applied (added, or multiplied for precipitation totals and ratios)
+    anchor: bool = False
 
     @model_validator(mode="after")
     def _consistent(self) -> DeriveSection:

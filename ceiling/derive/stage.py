@@ -26,7 +26,7 @@ import rasterio
 from rasterio.windows import Window
 
 from ..config import RunConfig
-from ..grids import GridSpec, template_grid
+from ..grids import BlockReader, GridSpec, layer_reader, template_grid
 from ..outputs.atomic import tmp_name
 from ..outputs.geotiff import FLOAT_NODATA
 from ..scenarios import PRESENT, Climate, LayerRef, climates
@@ -62,6 +62,7 @@ class DerivePlan:
     climates: tuple[Climate, ...]
     changes: tuple[CoarseChange, ...]
     historical: tuple[int, int]
+    present: dict[str, BlockReader] | None = None  # anchoring: the present layers on the grid
 
 
 @dataclass
@@ -99,7 +100,12 @@ def plan_derive(cfg: RunConfig, todo: list[Climate], *, say: Callable[[str], Non
     baseline = open_baseline({v: sec.layer(v) for v in sec.baseline}, grid, base)
     opts = DeltaOptions(sec.precip_cap, sec.precip_floor)
     changes = coarse_changes(todo, baseline.variables, template_region(grid), hist, opts, say=say)
-    return DerivePlan(sec, grid, baseline, tuple(todo), tuple(changes), hist)
+    present = None
+    if sec.anchor:
+        layers = climates(cfg)[0].layers
+        present = {f: layer_reader(layers[f], grid, factor=f, units=INDICES[d.index].units)
+                   for f, d in sec.factors.items()}
+    return DerivePlan(sec, grid, baseline, tuple(todo), tuple(changes), hist, present)
 
 
 def _windows(grid: GridSpec, chunk: int):
@@ -128,10 +134,22 @@ def _fields(values: dict[str, np.ndarray], lat: np.ndarray) -> MonthlyFields:
     return MonthlyFields(values.get("tasmax"), values.get("tasmin"), values.get("pr"), values.get("tas"), lat)
 
 
+def _anchored(spec_change: str, present: np.ndarray, value: np.ndarray, base: np.ndarray) -> np.ndarray:
+    """A present layer with a factor's change from its baseline value applied (added, or multiplied)."""
+    if spec_change == "additive":
+        return present + (value - base)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where(base > 0, present * (value / base), present)
+
+
 def _chunk(plan: DerivePlan, rows: slice, cols: slice, definitions: dict[str, dict]):
     """Every climate's factors in one window: {(climate index, factor): (h, w) float32}."""
     values = plan.baseline.read(rows, cols)
     valid = np.all([np.isfinite(v).all(axis=0) for v in values.values()], axis=0)
+    anchors = None
+    if plan.present is not None:
+        anchors = {f: np.asarray(r[rows, cols], dtype="float64") for f, r in plan.present.items()}
+        valid &= np.all([np.isfinite(a) for a in anchors.values()], axis=0)
     shape = valid.shape
     out = {}
     if not valid.any():
@@ -142,6 +160,10 @@ def _chunk(plan: DerivePlan, rows: slice, cols: slice, definitions: dict[str, di
     by_climate = {ch.climate.key: ch for ch in plan.changes}
     centre = template_region(plan.grid).centre
     interps: dict[int, Interpolator] = {}
+    at_base = None
+    if anchors is not None:
+        mf = _fields(base, qlat)
+        at_base = {f: compute_index(d, mf) for f, d in definitions.items()}
     for i, c in enumerate(plan.climates):
         if c.is_present:
             fields = base
@@ -154,7 +176,12 @@ def _chunk(plan: DerivePlan, rows: slice, cols: slice, definitions: dict[str, di
         mf = _fields(fields, qlat)
         for f, d in definitions.items():
             grid_values = np.full(shape, np.nan, np.float32)
-            grid_values[valid] = compute_index(d, mf)
+            if anchors is None:
+                grid_values[valid] = compute_index(d, mf)
+            elif c.is_present:
+                grid_values[valid] = anchors[f][valid]
+            else:
+                grid_values[valid] = _anchored(INDICES[d["index"]].change, anchors[f][valid], compute_index(d, mf), at_base[f])
             out[(i, f)] = grid_values
     return out
 
@@ -197,6 +224,7 @@ def method_record(plan: DerivePlan) -> dict:
         "precip_cap": sec.precip_cap,
         "precip_floor_mm_per_month": sec.precip_floor,
         "chunk": sec.chunk,
+        "anchor": sec.anchor,
         "baseline": {v: [str(r.path) for r in refs] for v, refs in plan.baseline.refs.items()},
         "factors": {f: {**d.model_dump(), "label": INDICES[d.index].label, "units": INDICES[d.index].units,
                         "computed_by": INDICES[d.index].computed_by} for f, d in sec.factors.items()},
