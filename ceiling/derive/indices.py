@@ -16,7 +16,7 @@ which xclim turns back into the total).
 | ``annual_precipitation`` | yearly precipitation total (mm) | ``xclim.indices.prcptot`` |
 | ``wettest_quarter_precipitation`` / ``driest_quarter_precipitation`` | precipitation of the wettest / driest three consecutive months, December-February included (mm) | ``xclim.indices.prcptot_wetdry_quarter`` on the year repeated twice (so the three months may span the year's end), second year kept |
 | ``temperature_seasonality`` | coefficient of variation of the monthly mean temperatures in kelvin (%) | ``xclim.indices.temperature_seasonality`` |
-| ``growing_degree_days`` | degree days above ``base`` (K d), estimated from monthly means | ``xclim.indices.growing_degree_days`` on the monthly means: each month adds ``max(T - base, 0)`` times one twelfth of a year (30.44 days); this underestimates where daily temperatures straddle the base within a month (common practice) |
+| ``growing_degree_days`` | degree days above ``base`` (K d), estimated from monthly means | our own: each month adds ``max(T - base, 0)`` times its days (the monthly-mean method; it underestimates where daily temperatures straddle the base within a month, common practice). xclim's ``growing_degree_days`` counts daily values; on monthly means it scales by a "month" whose length depends on the state of its unit registry, so it is not used here |
 | ``moisture_index`` | yearly precipitation over yearly potential evapotranspiration (1) | PET by :mod:`ceiling.derive.pet` (method ``pet``); the ratio is our own code |
 
 With ``[derive] anchor = true`` a factor's change (future minus baseline value, or their ratio for
@@ -126,9 +126,8 @@ INDICES: dict[str, IndexSpec] = {
         lambda f, p: _xclim("temperature_seasonality", _da(f.tas, "degC"))),
     "growing_degree_days": IndexSpec(
         "degree days above a base temperature, from monthly means", "K d", ("tasmax", "tasmin"),
-        "xclim.indices.growing_degree_days (monthly means)",
-        lambda f, p: _xclim("growing_degree_days", _da(f.tas, "degC"), thresh=f"{p.get('base', 5.0)} degC",
-                            convert="K d")),
+        "ceiling.derive.indices (monthly-mean method)",
+        lambda f, p: (np.maximum(f.tas - float(p.get("base", 5.0)), 0.0) * nominal_days()[:, None]).sum(axis=0)),
     "moisture_index": IndexSpec(
         "moisture index: yearly precipitation over potential evapotranspiration", "1", ("tasmax", "tasmin", "pr"),
         "ceiling.derive.indices (ratio) over ceiling.derive.pet", _moisture, "multiplicative"),

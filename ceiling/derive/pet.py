@@ -28,7 +28,7 @@ import xarray as xr
 from .calendars import NOMINAL_YEAR, nominal_days, nominal_months
 from .library import xclim
 
-__all__ = ["PET_METHODS", "MID_MONTH_DAY", "monthly_ra", "hargreaves_monthly", "monthly_pet"]
+__all__ = ["PET_METHODS", "MID_MONTH_DAY", "ra_on_days", "monthly_ra", "hargreaves_monthly", "monthly_pet"]
 
 PET_METHODS = ("hargreaves", "thornthwaite", "droogers_allen")
 # FAO-56, note to Eq. 21: for monthly values, J of the middle of month M is int(30.4 M - 15)
@@ -42,19 +42,24 @@ def _doy_times(days: np.ndarray) -> xr.DataArray:
     return xr.DataArray(times, dims="time", coords={"time": times}, name="time")
 
 
-def monthly_ra(lat: np.ndarray) -> np.ndarray:
-    """Extraterrestrial radiation (MJ m-2 day-1) on each month's middle day, shape (12, n)."""
+def ra_on_days(days: np.ndarray, lat: np.ndarray) -> np.ndarray:
+    """Extraterrestrial radiation (MJ m-2 day-1) on days of the year ``days``, shape (len(days), n)."""
     lib = xclim()
     lat = np.asarray(lat, dtype="float64")
     uniq, inverse = np.unique(lat, return_inverse=True)  # rows of a lon-lat grid share one latitude
     la = xr.DataArray(uniq, dims="cell", attrs={"units": "degrees_north"})
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        # every day of the year (xclim takes a daily series as whole days), then the middle days
+        # every day of the year (xclim takes a daily series as whole days), then the days asked for
         ra = lib.helpers.extraterrestrial_solar_radiation(_doy_times(np.arange(1, 366))["time"], la,
-                                              solar_constant=FAO_SOLAR_CONSTANT, method="simple")
+                                                          solar_constant=FAO_SOLAR_CONSTANT, method="simple")
         ra = lib.convert_units_to(ra, "MJ m-2 d-1")
-    return np.asarray(ra.transpose("time", "cell").values)[MID_MONTH_DAY - 1][:, inverse.reshape(-1)]
+    return np.asarray(ra.transpose("time", "cell").values)[np.asarray(days) - 1][:, inverse.reshape(-1)]
+
+
+def monthly_ra(lat: np.ndarray) -> np.ndarray:
+    """Extraterrestrial radiation (MJ m-2 day-1) on each month's middle day, shape (12, n)."""
+    return ra_on_days(MID_MONTH_DAY, lat)
 
 
 def hargreaves_monthly(tasmax: np.ndarray, tasmin: np.ndarray, lat: np.ndarray, tas: np.ndarray | None = None) -> np.ndarray:
