@@ -28,7 +28,7 @@ from .derive.calendars import days_in_month
 from .derive.indices import MonthlyFields, compute_index
 
 __all__ = ["SERIES_MODEL", "FACTOR_DEFINITIONS", "COARSE_LON", "COARSE_LAT", "make_baseline", "present_factors",
-           "write_series", "SERIES_SPANS"]
+           "write_series", "write_series_file", "SERIES_SPANS"]
 
 SERIES_MODEL = "model-d"
 # the demo's factor definitions ([derive.factors] of configs/demo.toml)
@@ -125,7 +125,9 @@ def _series(clim: dict[str, np.ndarray], years: tuple[int, int], rng: np.random.
     return {"tasmax": tasmax, "tasmin": tasmin, "pr": pr}
 
 
-def _write_file(path: Path, variable: str, values: np.ndarray, years: tuple[int, int], run: str) -> Path:
+def write_series_file(path: Path, variable: str, values: np.ndarray, years: tuple[int, int], run: str, *,
+                      lon: np.ndarray = COARSE_LON, lat: np.ndarray = COARSE_LAT) -> Path:
+    """One variable of one run as a monthly CF series (``values``: degC or mm per month, (months, lat, lon))."""
     path.parent.mkdir(parents=True, exist_ok=True)
     months = [(y, m) for y in range(years[0], years[1] + 1) for m in range(1, 13)]
     start = [netCDF4.date2num(cftime.datetime(y, m, 1, calendar="noleap"), "days since 1850-01-01",
@@ -146,15 +148,15 @@ def _write_file(path: Path, variable: str, values: np.ndarray, years: tuple[int,
                       "frequency": "mon"})
         nc.createDimension("time", None)
         nc.createDimension("bnds", 2)
-        nc.createDimension("lat", COARSE_LAT.size)
-        nc.createDimension("lon", COARSE_LON.size)
+        nc.createDimension("lat", lat.size)
+        nc.createDimension("lon", lon.size)
         t = nc.createVariable("time", "f8", ("time",))
         t.setncatts({"standard_name": "time", "units": "days since 1850-01-01", "calendar": "noleap", "axis": "T",
                      "bounds": "time_bnds"})
         t[:] = bounds.mean(axis=1)
         nc.createVariable("time_bnds", "f8", ("time", "bnds"))[:] = bounds
-        for name, vals, std, units, axis in (("lat", COARSE_LAT, "latitude", "degrees_north", "Y"),
-                                             ("lon", COARSE_LON, "longitude", "degrees_east", "X")):
+        for name, vals, std, units, axis in (("lat", lat, "latitude", "degrees_north", "Y"),
+                                             ("lon", lon, "longitude", "degrees_east", "X")):
             v = nc.createVariable(name, "f8", (name,))
             v.setncatts({"standard_name": std, "units": units, "axis": axis})
             v[:] = vals
@@ -182,5 +184,5 @@ def write_series(out: Path, seed: int, warming: dict[tuple[str, str], float], sc
         values = _series(c, years, rng)
         for var in ("tasmax", "tasmin", "pr"):
             name = f"{var}_mon_{SERIES_MODEL}_{run}_{years[0]}01-{years[1]}12.nc"
-            written.append(_write_file(folder / run / name, var, values[var], years, run))
+            written.append(write_series_file(folder / run / name, var, values[var], years, run))
     return written

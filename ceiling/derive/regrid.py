@@ -45,12 +45,11 @@ def fill_gaps(field: np.ndarray) -> np.ndarray:
 
 @dataclass(frozen=True)
 class Interpolator:
-    """Weights that take fields on a coarse (lat, lon) grid to a set of points."""
+    """Weights that take fields on a coarse (lat, lon) grid to a set of points: four flat indices
+    into the coarse grid and their weights (one index, weight 1, for the nearest cell)."""
 
-    i0: np.ndarray
-    j0: np.ndarray
-    wx: np.ndarray
-    wy: np.ndarray
+    index: tuple[np.ndarray, ...]
+    weight: tuple[np.ndarray, ...]
 
     @classmethod
     def build(cls, lon: np.ndarray, lat: np.ndarray, qlon: np.ndarray, qlat: np.ndarray, *, method: str,
@@ -59,19 +58,21 @@ class Interpolator:
         q = (np.asarray(qlon, dtype="float64") - centre + 180.0) % 360.0 - 180.0 + centre
         fx = np.interp(q, lon, np.arange(lon.size, dtype="float64"))
         fy = np.interp(np.asarray(qlat, dtype="float64"), lat, np.arange(lat.size, dtype="float64"))
+        nx = lon.size
         if method == "nearest":
-            return cls(np.rint(fx).astype(np.intp), np.rint(fy).astype(np.intp), np.zeros_like(fx), np.zeros_like(fy))
+            return cls((np.rint(fy).astype(np.intp) * nx + np.rint(fx).astype(np.intp),), (np.ones_like(fx),))
         i0 = np.clip(np.floor(fx).astype(np.intp), 0, max(lon.size - 2, 0))
         j0 = np.clip(np.floor(fy).astype(np.intp), 0, max(lat.size - 2, 0))
-        return cls(i0, j0, fx - i0, fy - j0)
+        i1, j1 = np.minimum(i0 + 1, lon.size - 1), np.minimum(j0 + 1, lat.size - 1)
+        wx, wy = fx - i0, fy - j0
+        return cls((j0 * nx + i0, j0 * nx + i1, j1 * nx + i0, j1 * nx + i1),
+                   ((1 - wx) * (1 - wy), wx * (1 - wy), (1 - wx) * wy, wx * wy))
 
     def __call__(self, field: np.ndarray) -> np.ndarray:
         """(..., n_lat, n_lon) -> (..., n_points)."""
         f = fill_gaps(field)
-        if not self.wx.any() and not self.wy.any():
-            return f[..., self.j0, self.i0]
-        i1 = np.minimum(self.i0 + 1, f.shape[-1] - 1)
-        j1 = np.minimum(self.j0 + 1, f.shape[-2] - 1)
-        top = f[..., self.j0, self.i0] * (1 - self.wx) + f[..., self.j0, i1] * self.wx
-        bottom = f[..., j1, self.i0] * (1 - self.wx) + f[..., j1, i1] * self.wx
-        return top * (1 - self.wy) + bottom * self.wy
+        flat = f.reshape(f.shape[:-2] + (-1,))
+        out = np.take(flat, self.index[0], axis=-1) * self.weight[0]
+        for k, w in zip(self.index[1:], self.weight[1:]):
+            out += np.take(flat, k, axis=-1) * w
+        return out

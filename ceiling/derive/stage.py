@@ -156,7 +156,8 @@ def _chunk(plan: DerivePlan, rows: slice, cols: slice, definitions: dict[str, di
         return {(i, f): np.full(shape, np.nan, np.float32) for i in range(len(plan.climates)) for f in definitions}
     lon, lat = chunk_lonlat(plan.grid, rows, cols)
     qlon, qlat = lon[valid], lat[valid]
-    base = {v: a[:, valid] for v, a in values.items()}
+    everywhere = bool(valid.all())
+    base = {v: (a.reshape(12, -1) if everywhere else a[:, valid]) for v, a in values.items()}
     by_climate = {ch.climate.key: ch for ch in plan.changes}
     centre = template_region(plan.grid).centre
     interps: dict[int, Interpolator] = {}
