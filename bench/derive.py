@@ -40,7 +40,7 @@ LAUNCHER = ("import os,sys,resource;pid=os.fork()\n"
 
 
 def _field(kind: str, month: int, rows: np.ndarray, cols: np.ndarray, n: int) -> np.ndarray:
-    y, x = np.meshgrid(rows / n, cols / n, indexing="ij")
+    y, x = (rows / n)[:, None], (cols / n)[None, :]
     c = np.cos(2 * np.pi * (month - 1) / 12)
     smooth = np.sin(6.0 * x) * np.cos(4.0 * y)
     if kind == "tasmax":
@@ -54,7 +54,8 @@ def write_baseline(folder: Path, n: int) -> None:
     cell = EXTENT / n
     profile = dict(driver="GTiff", width=n, height=n, count=1, dtype="float32", crs="EPSG:4326",
                    transform=from_origin(WEST, NORTH, cell, cell), nodata=-9999.0, tiled=True,
-                   blockxsize=512, blockysize=512, compress="deflate", predictor=3, BIGTIFF="IF_SAFER")
+                   blockxsize=512, blockysize=512, compress="deflate", predictor=3, zlevel=1, num_threads=2,
+                   BIGTIFF="IF_SAFER")
     folder.mkdir(parents=True, exist_ok=True)
     units = {"tasmax": "degC", "tasmin": "degC", "pr": "mm"}
     for var in ("tasmax", "tasmin", "pr"):
