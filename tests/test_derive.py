@@ -319,3 +319,38 @@ def test_unknown_variable_is_refused(tmp_path):
 
 def test_days_in_month_of_the_cf_calendars_match_cftime_date_arithmetic():
     assert days_in_month(2100, 2, "standard") == 28 and days_in_month(2100, 2, "julian") == 29
+
+
+def _daily_file(path, *, years, calendar, drop_day=None):
+    path.parent.mkdir(parents=True, exist_ok=True)
+    start = cftime.datetime(years[0], 1, 1, calendar=calendar)
+    n = int(round((cftime.datetime(years[1] + 1, 1, 1, calendar=calendar) - start).total_seconds() / 86400))
+    days = [d for d in range(n) if d != drop_day]
+    with netCDF4.Dataset(path, "w") as nc:
+        for name, size in (("time", None), ("lat", 2), ("lon", 2)):
+            nc.createDimension(name, size)
+        t = nc.createVariable("time", "f8", ("time",))
+        t.setncatts({"units": f"days since {years[0]}-01-01", "calendar": calendar})
+        t[:] = np.array(days, dtype="float64") + 0.5
+        for name, v, u in (("lat", (-51.0, -49.0), "degrees_north"), ("lon", (159.0, 162.0), "degrees_east")):
+            c = nc.createVariable(name, "f8", (name,))
+            c.units = u
+            c[:] = v
+        var = nc.createVariable("tasmin", "f4", ("time", "lat", "lon"))
+        var.units = "K"
+        var[:] = np.broadcast_to((273.15 + np.array(days) % 7)[:, None, None], (len(days), 2, 2))
+
+
+def test_daily_series_become_monthly_means_and_a_missing_day_is_refused(tmp_path):
+    """Daily values in a 360_day calendar: each month's mean of its 30 days; a gap is one clear error."""
+    from ceiling.derive.series import Region, read_series
+
+    region = Region(160.0, 161.0, -50.5, -50.0)
+    _daily_file(tmp_path / "ok" / "tasmin_d.nc", years=(2001, 2001), calendar="360_day")
+    s = read_series(str(tmp_path / "ok" / "{variable}_*.nc"), "tasmin", region, (2001, 2001), where="test")
+    assert s.frequency == "daily" and s.values.shape[0] == 12
+    by_hand = [np.mean([d % 7 for d in range(30 * m, 30 * m + 30)]) for m in range(12)]
+    np.testing.assert_allclose(s.values[:, 0, 0], by_hand, atol=1e-4)
+    _daily_file(tmp_path / "gap" / "tasmin_d.nc", years=(2001, 2001), calendar="noleap", drop_day=40)
+    with pytest.raises(DataError, match="month 2001-02 has 27 daily values of 28"):
+        read_series(str(tmp_path / "gap" / "{variable}_*.nc"), "tasmin", region, (2001, 2001), where="test")
