@@ -354,3 +354,22 @@ def test_daily_series_become_monthly_means_and_a_missing_day_is_refused(tmp_path
     _daily_file(tmp_path / "gap" / "tasmin_d.nc", years=(2001, 2001), calendar="noleap", drop_day=40)
     with pytest.raises(DataError, match="month 2001-02 has 27 daily values of 28"):
         read_series(str(tmp_path / "gap" / "{variable}_*.nc"), "tasmin", region, (2001, 2001), where="test")
+
+
+def test_the_demo_run_derives_its_raw_series_climate(tmp_path_factory):
+    """``ceiling run configs/demo.toml`` (once per session) derives model-d from its series on the way."""
+    import json
+
+    from projection_helpers import demo_run
+
+    out, _ = demo_run(tmp_path_factory)
+    man = json.loads((out / "derived" / "manifest.json").read_text())
+    assert man["kind"] == "ceiling-derive-manifest" and man["anchor"] is True
+    assert {(c["scenario"], c["climate_model"], c["period"]) for c in man["climates"]} == {
+        (s, "model-d", p) for s in ("ssp245", "ssp585") for p in ("2041-2070", "2071-2100")}
+    assert {v["calendar"] for c in man["climates"] for v in c["variables"].values()} == {"noleap"}
+    for e in man["outputs"]:
+        assert (out / "derived" / e["path"]).is_file()
+    assert len(man["outputs"]) == 16 and len([e for e in man["inputs"] if e["path"].endswith(".nc")]) == 15
+    for sp in ("sp_a", "sp_b", "sp_c"):
+        assert (out / sp / "ssp585" / "model-d" / "2071-2100" / "ceiling.tif").is_file()

@@ -213,7 +213,7 @@ def test_netcdf_attributes(demo):
         assert ds["crs"].grid_mapping_name == "latitude_longitude"
         assert ds["crs"].semi_major_axis == 6378137.0
         assert list(ds["species_name"][:]) == SPECIES
-        assert ds.dimensions["climate"].size == 12
+        assert ds.dimensions["climate"].size == 16  # 2 scenarios x 4 climate models x 2 periods
         assert ds["x"].units == "degrees_east" and ds["y"].units == "degrees_north"
         area = ds["cell_area"]
         assert area.units == "m2" and area.standard_name == "cell_area"
