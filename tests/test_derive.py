@@ -24,7 +24,7 @@ import numpy as np
 import pytest
 import rasterio
 from click.testing import CliRunner
-from conftest import DEMO_CONFIG, DEMO_GRIDS, write_tif
+from conftest import DEMO_GRIDS, write_tif
 from reference_values import CF_MONTH_DAYS, FAO56_RA
 
 from ceiling.cli.main import cli
