@@ -373,3 +373,54 @@ def test_the_demo_run_derives_its_raw_series_climate(tmp_path_factory):
     assert len(man["outputs"]) == 16 and len([e for e in man["inputs"] if e["path"].endswith(".nc")]) == 15
     for sp in ("sp_a", "sp_b", "sp_c"):
         assert (out / sp / "ssp585" / "model-d" / "2071-2100" / "ceiling.tif").is_file()
+
+
+# --- daily series: quantile mapping (xsdba) and daily indices (xclim) ---------------------------
+
+def _daily(values, start="2001-01-01", units="degC"):
+    import pandas as pd
+
+    t = pd.date_range(start, periods=len(values), freq="D")
+    return xr_da(values, t, units)
+
+
+def xr_da(values, t, units):
+    import xarray as xr
+
+    return xr.DataArray(np.asarray(values, dtype="float64"), dims="time", coords={"time": t}, attrs={"units": units})
+
+
+def test_quantile_mapping_maps_the_historical_distribution_onto_the_reference():
+    """Empirical quantile mapping, F_ref^-1(F_hist(x)) (Panofsky & Brier 1968): adjusting the
+    historical run itself gives, month by month, the reference's distribution."""
+    from ceiling.derive.daily import quantile_mapping
+
+    rng = np.random.default_rng(3)
+    n = 365 * 10
+    doy = np.arange(n) % 365
+    season = 10 * np.cos(2 * np.pi * doy / 365)
+    ref = _daily(12 + season + rng.normal(0, 3, n))
+    hist = _daily(15 + 0.8 * season + rng.normal(0, 2, n))  # biased: warmer, narrower
+    adj = quantile_mapping(ref, hist, hist, variable="tasmax", nquantiles=50)
+    for m in (1, 7):
+        a = adj.where(adj.time.dt.month == m, drop=True).values
+        r = ref.where(ref.time.dt.month == m, drop=True).values
+        h = hist.where(hist.time.dt.month == m, drop=True).values
+        q = np.linspace(0.05, 0.95, 10)
+        assert np.max(np.abs(np.quantile(a, q) - np.quantile(r, q))) < 0.3  # vs about 3 K before
+        assert np.max(np.abs(np.quantile(h, q) - np.quantile(r, q))) > 1.5
+
+
+def test_daily_indices_by_hand_and_monthly_input_refused():
+    from ceiling.derive.daily import daily_index
+
+    tmin = np.tile(np.r_[np.full(40, -2.0), np.full(325, 6.0)], 2)  # 40 frost days a year
+    assert float(daily_index("frost_days", _daily(tmin))) == 40
+    tas = np.tile(np.r_[np.full(100, 8.0), np.full(265, 4.0)], 2)
+    # degree days above 5 degC: sum over days of max(T - 5, 0), a year's mean: 100 x 3
+    assert float(daily_index("growing_degree_days", _daily(tas), base=5.0)) == pytest.approx(300.0)
+    import pandas as pd
+
+    monthly = xr_da(np.full(24, 3.0), pd.date_range("2001-01-01", periods=24, freq="MS"), "degC")
+    with pytest.raises(DataError, match="daily index 'frost_days'"):
+        daily_index("frost_days", monthly)
