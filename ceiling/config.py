@@ -25,6 +25,7 @@ __all__ = [
     "FitConfig",
     "load_config",
     "parse_config",
+    "validate_section",
 ]
 
 Basis = Literal["linear", "quadratic", "spline"]
@@ -171,6 +172,7 @@ class RunConfig(_Section):
     futures: list[dict[str, Any]] | None = None
     projection: dict[str, Any] | None = None
     outputs: dict[str, Any] | None = None
+    derive: dict[str, Any] | None = None  # factor layers from climate-model series (ceiling.derive.settings)
     source: Path | None = Field(default=None, exclude=True)
 
     @field_validator("factors")
@@ -208,22 +210,48 @@ def _allowed_keys(model: type[BaseModel]) -> list[str]:
     return [k for k in model.model_fields if k != "source"]
 
 
-def _section_for(loc: tuple[Any, ...]) -> type[BaseModel]:
+def _nested_model(model: type[BaseModel], key: str) -> type[BaseModel] | None:
+    """The pydantic model a field of ``model`` holds (directly, in a list, a mapping or an optional)."""
+    field = model.model_fields.get(key)
+    todo, seen = [field.annotation] if field is not None else [], 0
+    while todo and seen < 20:
+        t, seen = todo.pop(), seen + 1
+        if isinstance(t, type) and issubclass(t, BaseModel):
+            return t
+        todo.extend(getattr(t, "__args__", ()))
+    return None
+
+
+def _section_for(loc: tuple[Any, ...], roots: dict[str, type[BaseModel]] | None = None) -> type[BaseModel]:
     model: type[BaseModel] = RunConfig
-    sections = {"survey": SurveyConfig, "factors": FactorConfig, "fit": FitConfig}
-    for part in loc[:-1]:
-        if isinstance(part, str) and part in sections:
+    sections = {"survey": SurveyConfig, "factors": FactorConfig, "fit": FitConfig, **(roots or {})}
+    for i, part in enumerate(loc[:-1]):
+        if i == 0 and isinstance(part, str) and part in sections:
             model = sections[part]
+        elif isinstance(part, str) and (inner := _nested_model(model, part)) is not None:
+            model = inner
     return model
 
 
-def _format_error(err: dict[str, Any], path: Path | str) -> str:
+def validate_section(model: type[BaseModel], data: Any, *, where: str, source: Path | str | None) -> Any:
+    """Validate a free section (``[derive]``, ...) with ``model``; a bad value gets the one-line message of
+    every other config error (unknown keys with the closest valid key of their own table)."""
+    try:
+        return model.model_validate(data if data is not None else {})
+    except ValidationError as exc:
+        errors = exc.errors()
+        err = next((e for e in errors if e.get("type") == "extra_forbidden"), errors[0])
+        loc = (where, *(p for p in err.get("loc", ()) if not (isinstance(p, str) and p[:1].isupper() or p in ("str",))))
+        raise ConfigError(_format_error({**err, "loc": loc}, source or "config", roots={where: model})) from None
+
+
+def _format_error(err: dict[str, Any], path: Path | str, roots: dict[str, type[BaseModel]] | None = None) -> str:
     loc = tuple(err.get("loc", ()))
     dotted = ".".join(str(p) for p in loc) or "(top level)"
     kind = err.get("type", "")
     if kind == "extra_forbidden":
         key = str(loc[-1])
-        allowed = _allowed_keys(_section_for(loc))
+        allowed = _allowed_keys(_section_for(loc, roots))
         close = difflib.get_close_matches(key, allowed, n=1, cutoff=0.5)
         hint = f"did you mean '{close[0]}'?" if close else f"valid keys: {', '.join(allowed)}"
         return f"{path}: unknown key '{dotted}'; {hint}"

@@ -5,9 +5,10 @@ region lies in open ocean (lon -140..-130, lat -48..-40) so that no real place i
 land, the climate, the three species and their survey are all invented and carry no
 information about any real place, species or study.
 
-The scenario exercises the whole tool: four climate factors on a present-day grid, futures for
-two emission scenarios, three climate models and two periods (one model delivers CF NetCDF in
-other units), a survey of counts for three species, and the true per-factor ceilings that
+The scenario exercises the whole tool: a fine monthly baseline, four climate factors derived
+from it on a present-day grid (:mod:`ceiling.demo_climate`), futures for two emission scenarios,
+four climate models and two periods (one model delivers CF NetCDF in other units, one raw monthly
+series from which the factors are derived), a survey of counts for three species, and the true per-factor ceilings that
 generated the counts, combined by the law of the minimum, so that a fit can be checked against
 the truth. It also holds invented zones (fictional reserves and management units, ``zones.gpkg``)
 for the zonal summaries.
@@ -27,6 +28,8 @@ from rasterio import Affine
 from rasterio.crs import CRS
 from scipy import ndimage
 
+from .demo_climate import FACTOR_DEFINITIONS, SERIES_MODEL, make_baseline, write_series
+
 __all__ = [
     "DEFAULT_SEED", "FACTORS", "SCENARIOS", "MODELS", "PERIODS", "NODATA", "TRANSFORM",
     "make_demo", "make_land", "make_present", "make_future", "ceiling_curve", "true_ceiling",
@@ -41,12 +44,12 @@ NOTE = "invented demo data"
 TEXT: dict[str, Any] = {"encoding": "utf-8", "newline": "\n"}  # same bytes on every platform
 
 FACTORS: dict[str, dict[str, str]] = {
-    "tmax_warm": {"units": "degC", "long_name": "maximum temperature of the warmest month"},
-    "tmin_cold": {"units": "degC", "long_name": "minimum temperature of the coldest month"},
-    "precip": {"units": "mm year-1", "long_name": "annual precipitation"},
+    "tmax_warm": {"units": "degC", "long_name": "hottest-month daily maximum"},
+    "tmin_cold": {"units": "degC", "long_name": "coldest-month daily minimum"},
+    "precip": {"units": "mm year-1", "long_name": "yearly precipitation total"},
     "moisture": {
         "units": "1",
-        "long_name": "moisture index (precipitation over potential evapotranspiration)",
+        "long_name": "moisture index: yearly precipitation over potential evapotranspiration (Hargreaves)",
     },
 }
 RANGES = {"tmax_warm": (16.0, 34.0), "tmin_cold": (-8.0, 8.0), "precip": (300.0, 2500.0),
@@ -162,6 +165,21 @@ def make_present(land: np.ndarray, seed: int) -> dict[str, np.ndarray]:
     return out
 
 
+def make_monthly(land: np.ndarray, seed: int, present: dict[str, np.ndarray] | None = None) -> dict[str, np.ndarray]:
+    """The invented fine monthly baseline, (12, rows, cols): tasmax, tasmin (degC), pr (mm per month).
+
+    Built from the present factors so that the baseline's hottest-month maximum, coldest-month
+    minimum and yearly total are those layers (to float32 rounding); the moisture layer sets its
+    daily temperature range (humid air, small range). A moisture index computed from any plausible
+    monthly baseline (precipitation over Hargreaves PET) cannot reproduce the invented moisture
+    layer (it would need a PET of up to 8,700 mm a year), so the demo anchors (``[derive] anchor``):
+    each derived change is computed within this baseline and applied to the present layers.
+    """
+    present = make_present(land, seed) if present is None else present
+    fields = {**present, "humidity": (present["moisture"] - RANGES["moisture"][0]) / np.ptp(RANGES["moisture"])}
+    return make_baseline(fields, land, _rng(seed, 5), _smooth_noise)
+
+
 def make_future(present: dict[str, np.ndarray], land: np.ndarray, seed: int, scenario: str,
                 model: str, period: str) -> dict[str, np.ndarray]:
     """Present plus a smooth change field for one scenario, model and period (same units)."""
@@ -183,10 +201,16 @@ def make_future(present: dict[str, np.ndarray], land: np.ndarray, seed: int, sce
     }
 
 
-def _write_tif(path: Path, data: np.ndarray, factor: str, tags: dict[str, str]) -> None:
-    """Write one factor as a float32 single-band GeoTIFF with its units and description."""
+BASELINE_META = {"tasmax": {"units": "degC", "long_name": "monthly mean of the daily maximum temperature"},
+                 "tasmin": {"units": "degC", "long_name": "monthly mean of the daily minimum temperature"},
+                 "pr": {"units": "mm", "long_name": "monthly precipitation total"}}
+
+
+def _write_tif(path: Path, data: np.ndarray, factor: str, tags: dict[str, str],
+               meta: dict[str, str] | None = None) -> None:
+    """Write one factor (or baseline month) as a float32 single-band GeoTIFF with its units and description."""
     path.parent.mkdir(parents=True, exist_ok=True)
-    meta = FACTORS[factor]
+    meta = FACTORS[factor] if meta is None else meta
     profile = dict(driver="GTiff", width=WIDTH, height=HEIGHT, count=1, dtype="float32",
                    crs=CRS.from_epsg(4326), transform=TRANSFORM, nodata=NODATA,
                    compress="deflate", predictor=3, tiled=True, blockxsize=64, blockysize=64)
@@ -367,13 +391,15 @@ def write_demo_zones(path: str | Path) -> Path:
     return path
 
 
-def _readme(seed: int, land_share: float) -> str:
+def _readme(seed: int, land_share: float, ranges: dict[str, tuple[float, float]]) -> str:
     """The README of the output folder."""
+    definitions = ", ".join(f"`{f}` = `{d['index']}`" for f, d in FACTOR_DEFINITIONS.items())
+    series_model = SERIES_MODEL
     species = "\n".join(f"- `{code}` ({sp['label']}), {sp['n_sites']} sites:\n  "
                         + ", ".join(f"{f} {c['form']}" for f, c in sp["curves"].items())
                         for code, sp in SPECIES.items())
-    factors = "\n".join(f"| `{f}` | {m['long_name']} | `{m['units']}` | {RANGES[f][0]:g} to "
-                        f"{RANGES[f][1]:g} |" for f, m in FACTORS.items())
+    factors = "\n".join(f"| `{f}` | {m['long_name']} | `{m['units']}` | {ranges[f][0]:.4g} to "
+                        f"{ranges[f][1]:.4g} |" for f, m in FACTORS.items())
     return f"""# Demo grids: an INVENTED island
 
 Everything here is **invented**: the island, its climate, the climate models and the three
@@ -400,13 +426,27 @@ rows, north-up. Land is {100 * land_share:.1f} % of the cells; sea cells are nod
 
 ## Files
 
-- `present/{{factor}}.tif`: present-day layers, float32 GeoTIFF, nodata -9999, deflate.
+- `baseline/{{variable}}_{{month}}.tif`: the invented fine monthly baseline (1991-2020 normals),
+  12 months (`01`..`12`) each of `tasmax` and `tasmin` (monthly means of the daily maximum and
+  minimum temperature, `degC`) and `pr` (monthly precipitation total, `mm`), on the grid above.
+- `present/{{factor}}.tif`: present-day layers, float32 GeoTIFF, nodata -9999, deflate. The
+  baseline's own factors by the definitions of `configs/demo.toml` (`[derive.factors]`:
+  {definitions}) equal `tmax_warm`, `tmin_cold` and `precip` (to float32 rounding); the invented
+  moisture layer is finer than any moisture index of the baseline, so the demo anchors
+  (`[derive] anchor = true`): each derived future is the present layer with the factor's change
+  within the baseline applied (added; multiplied for `precip` and `moisture`).
 - `future/{{scenario}}/{{model}}/{{period}}/{{factor}}.tif` for `model-a` and `model-b`, same
-  format and units as the present.
+  format and units as the present (ready-made factor layers).
 - `future/{{scenario}}/model-c/{{period}}.nc`: CF-1.10 NetCDF, one variable per factor on
   dims (lat, lon), **lat descending** (north first, as the GeoTIFFs), cell-centre coordinates,
   `_FillValue` -9999, grid mapping `crs`. Units differ on purpose: temperatures in `K`,
   precipitation as a flux in `kg m-2 s-1` (= mm year-1 / 31556925.9747, seconds in the UDUNITS year), moisture `1`.
+- `series/{series_model}/{{run}}/{{variable}}_mon_{series_model}_{{run}}_{{start}}-{{end}}.nc`: the invented
+  climate model `{series_model}` as raw monthly series (`tasmax`, `tasmin` in `K`, `pr` in `kg m-2 s-1`),
+  CF-1.10 NetCDF on a coarse 1-degree grid (longitudes 0-360, latitudes ascending), `noleap`
+  calendar with time bounds, one file per variable and span of years: `historical` 1991-2020,
+  `ssp245` and `ssp585` 2041-2070 and 2071-2100. Its factor layers are derived on the way
+  (change factors on the baseline: `ceiling derive`, or `ceiling run` directly).
 - `survey.csv`: `site_id,species,lon,lat,count`, one row per site and species; each species
   was surveyed at its own random land sites.
 - `truth.json`: the true ceiling curve of every species and factor, and the noise model.
@@ -415,7 +455,8 @@ rows, north-up. Land is {100 * land_share:.1f} % of the cells; sea cells are nod
   management units of the invented island, layer `zones`, EPSG:4326, attributes `id`, `name`,
   `kind` and `note`. The names are made up and refer to no real place.
 
-Scenarios: {", ".join(SCENARIOS)}. Models: {", ".join(MODELS)}. Periods: {", ".join(PERIODS)}.
+Scenarios: {", ".join(SCENARIOS)}. Models: {", ".join(MODELS)} (ready-made layers) and {series_model}
+(raw series). Periods: {", ".join(PERIODS)}.
 Futures warm everywhere and precipitation changes by -25 % to +15 %, so part of the island
 has climates outside the present range.
 
@@ -438,7 +479,14 @@ def make_demo(out_dir: str | Path, *, seed: int = DEFAULT_SEED) -> dict[str, Any
     out.mkdir(parents=True, exist_ok=True)
     land = make_land(seed)
     present = make_present(land, seed)
+    monthly = make_monthly(land, seed, present)
     written: list[Path] = []
+    for var, months in monthly.items():
+        for m in range(12):
+            written.append(out / "baseline" / f"{var}_{m + 1:02d}.tif")
+            _write_tif(written[-1], months[m], var, {"period": "1991-2020", "month": f"{m + 1:02d}"},
+                       BASELINE_META[var])
+    written += write_series(out, seed, WARMING, SCENARIOS)
     for factor, data in present.items():
         written.append(out / "present" / f"{factor}.tif")
         _write_tif(written[-1], data, factor, {"period": "present"})
@@ -466,7 +514,8 @@ def make_demo(out_dir: str | Path, *, seed: int = DEFAULT_SEED) -> dict[str, Any
                     for code, sp in SPECIES.items()},
     }
     (out / "truth.json").write_text(json.dumps(truth, indent=2) + "\n", **TEXT)
-    (out / "README.md").write_text(_readme(seed, float(land.mean())), **TEXT)
+    ranges = {f: (float(np.nanmin(v)), float(np.nanmax(v))) for f, v in present.items()}
+    (out / "README.md").write_text(_readme(seed, float(land.mean()), ranges), **TEXT)
     written += [survey, out / "truth.json", out / "README.md", write_demo_zones(out / DEMO_ZONES)]
     return {"out_dir": str(out), "files": [str(p) for p in written],
             "n_files": len(written), "land_cells": int(land.sum()),

@@ -40,6 +40,7 @@ from .climate_writer import (
 )
 from .cluster import compute_context
 from .config import RunConfig
+from .derive.stage import derive_for_run, derive_inputs
 from .errors import DataError
 from .grids import GridSpec, template_grid
 from .kernels import NODATA_CODE
@@ -200,7 +201,8 @@ def run_projection(
     """Project every species onto every climate of ``cfg``, writing into ``stage``."""
     say = progress or (lambda s: None)
     opts: ProjectionOptions = projection_options(cfg)
-    cl = climates(cfg)
+    # climates declared as raw series get their factor layers here, chunk by chunk (ceiling.derive)
+    cl = derive_for_run(cfg, climates(cfg), stage, progress=progress)
     factors = cfg.factor_names
     ms = list(models)
     for m in ms:
@@ -395,7 +397,7 @@ def project_to_folder(
     t_start = time.perf_counter()
     cl = climates(cfg)
     projection_options(cfg)
-    inputs = config_inputs(cfg) + _all_layer_paths(cl) + ([Path(model_path)] if model_path else [])
+    inputs = config_inputs(cfg) + _all_layer_paths(cl) + derive_inputs(cfg, cl) + ([Path(model_path)] if model_path else [])
     # regions and community layers ([outputs.zones], [outputs.community]): a bad table or zones file is refused now
     from .community import community_options
     from .zones import load_zones_config

@@ -19,6 +19,17 @@ or as a product of names with a path pattern (``{scenario}``, ``{model}``, ``{pe
     pattern = "future/{scenario}/{model}/{period}.nc"
     variable = "{factor}"
 
+or, for a climate delivered as raw climate-model series, with the series' glob patterns
+(``{variable}`` is filled by the derive stage, which turns them into factor layers on the way:
+:mod:`ceiling.derive`; ``climate_model(s)`` may stand for ``model(s)``)::
+
+    [[futures]]
+    scenarios = ["ssp245", "ssp585"]
+    climate_models = ["model-d"]
+    periods = ["2041-2070", "2071-2100"]
+    series = "series/{climate_model}/{scenario}/{variable}_*.nc"
+    historical = "series/{climate_model}/historical/{variable}_*.nc"
+
 Relative paths are resolved against the config's folder. The projection options
 (``[projection]``) are validated here too.
 """
@@ -36,7 +47,7 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_valida
 from .config import RunConfig, _format_error
 from .errors import ConfigError
 
-__all__ = ["LayerRef", "Climate", "ProjectionOptions", "climates", "projection_options", "PRESENT"]
+__all__ = ["LayerRef", "SeriesRef", "Climate", "ProjectionOptions", "climates", "projection_options", "PRESENT"]
 
 PRESENT = "present"
 
@@ -54,11 +65,20 @@ class LayerRef:
 
 
 @dataclass(frozen=True)
+class SeriesRef:
+    """A climate delivered as climate-model series: glob patterns with ``{variable}`` left to fill."""
+
+    future: str
+    historical: str
+
+
+@dataclass(frozen=True)
 class Climate:
     scenario: str
     model: str
     period: str
     layers: dict[str, LayerRef]
+    series: SeriesRef | None = None  # raw series: layers are derived (ceiling.derive) before use
 
     @property
     def is_present(self) -> bool:
@@ -100,14 +120,31 @@ class _FutureSpec(_Strict):
     pattern: str | None = None
     variable: str | None = None
     units: dict[str, str] = Field(default_factory=dict)
+    series: str | None = None
+    historical: str | None = None
+
+    @model_validator(mode="before")
+    @classmethod
+    def _climate_model_words(cls, data: Any) -> Any:
+        if isinstance(data, dict):
+            for new, old in (("climate_model", "model"), ("climate_models", "models")):
+                if new in data:
+                    if old in data:
+                        raise ValueError(f"give '{new}' or '{old}', not both")
+                    data = {**{k: v for k, v in data.items() if k != new}, old: data[new]}
+        return data
 
     @model_validator(mode="after")
     def _one_form(self) -> _FutureSpec:
         for one, many in (("scenario", "scenarios"), ("model", "models"), ("period", "periods")):
             if (getattr(self, one) is None) == (getattr(self, many) is None):
                 raise ValueError(f"give either '{one}' or '{many}' (a list) for each future")
-        if not self.layers and not self.pattern:
-            raise ValueError("a future needs 'layers' (one path per factor) or a 'pattern'")
+        if (self.series is None) != (self.historical is None):
+            raise ValueError("raw series need both 'series' (the scenario run) and 'historical' (the historical run)")
+        if self.series and (self.layers or self.pattern):
+            raise ValueError("a future takes raw 'series' or ready-made 'layers' / 'pattern', not both")
+        if not self.layers and not self.pattern and not self.series:
+            raise ValueError("a future needs 'layers' (one path per factor), a 'pattern' or raw 'series'")
         return self
 
 
@@ -183,6 +220,21 @@ def _ref(spec: str | _LayerSpec, base: Path, fmt: dict[str, str], units: str | N
     )
 
 
+class _KeepUnknown(dict):
+    def __missing__(self, key: str) -> str:
+        return "{" + key + "}"
+
+
+def _series_ref(spec: _FutureSpec, base: Path, sc: str, mo: str, pe: str) -> SeriesRef:
+    fmt = _KeepUnknown(scenario=sc, model=mo, climate_model=mo, period=pe)
+
+    def one(pattern: str) -> str:
+        p = Path(pattern.format_map(fmt)).expanduser()
+        return str(p if p.is_absolute() else base / p)
+
+    return SeriesRef(one(spec.series or ""), one(spec.historical or ""))
+
+
 def climates(cfg: RunConfig) -> list[Climate]:
     """The present (first) and every future of the config, with one layer per factor."""
     base = _base(cfg)
@@ -217,6 +269,9 @@ def climates(cfg: RunConfig) -> list[Climate]:
             if mo == "ensemble":
                 raise ConfigError(f"{cfg.source}: 'ensemble' is reserved for the combined models; rename the climate model in futures.{i}")
             seen.add(key)
+            if spec.series:
+                out.append(Climate(str(sc), str(mo), str(pe), {}, _series_ref(spec, base, sc, mo, pe)))
+                continue
             fl = {}
             for name in names:
                 fmt = {"scenario": sc, "model": mo, "period": pe, "factor": name}

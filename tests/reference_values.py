@@ -73,3 +73,31 @@ ENGEL_SUM_ADEV = {
     0.75: Reference(13058.50008841318, rtol=1e-6, atol=0.0, source=_STATA + ", sum_adev at q=.75"),
 }
 ENGEL_N = 235  # Source: Koenker & Bassett (1982); statsmodels' engel dataset description
+
+
+# --- Deriving factors from climate-model output (ceiling.derive) --------------------------------
+
+# Month lengths of the CF calendars. Source: CF Conventions 1.10, section 4.4.1 "Calendar":
+# noleap/365_day = Gregorian common year in every year; all_leap/366_day = Gregorian leap year in
+# every year; 360_day = twelve months of 30 days; standard = Julian before 1582-10-15, Gregorian
+# after (1900 is a common year, 2000 a leap year); julian = a leap year every 4 years (1900 too).
+CF_MONTH_DAYS = {
+    ("noleap", 2001): (31, 28, 31, 30, 31, 30, 31, 31, 30, 31, 30, 31),
+    ("noleap", 2000): (31, 28, 31, 30, 31, 30, 31, 31, 30, 31, 30, 31),
+    ("360_day", 2000): (30,) * 12,
+    ("all_leap", 2001): (31, 29, 31, 30, 31, 30, 31, 31, 30, 31, 30, 31),
+    ("standard", 2000): (31, 29, 31, 30, 31, 30, 31, 31, 30, 31, 30, 31),
+    ("standard", 1900): (31, 28, 31, 30, 31, 30, 31, 31, 30, 31, 30, 31),
+    ("proleptic_gregorian", 1900): (31, 28, 31, 30, 31, 30, 31, 31, 30, 31, 30, 31),
+    ("julian", 1900): (31, 29, 31, 30, 31, 30, 31, 31, 30, 31, 30, 31),
+}
+
+# Extraterrestrial radiation Ra (MJ m-2 day-1). Source: Allen, Pereira, Raes & Smith (1998), FAO
+# Irrigation and Drainage Paper 56, chapter 3: Example 8 (20 deg S, 3 September, J = 246: Ra =
+# 32.2) and Example 10 (22 deg 54' S, 15 May, J = 135: Ra = 25.1). The figures are printed to 0.1;
+# the climate-index library's declination and eccentricity approximations differ from FAO-56's
+# Eqs. 23-24 by up to about 0.6% of Ra: rtol 1%.
+FAO56_RA = {
+    "example_8": Reference(32.2, rtol=0.01, atol=0.05, source="FAO-56 Example 8: lat -20, J 246"),
+    "example_10": Reference(25.1, rtol=0.01, atol=0.05, source="FAO-56 Example 10: lat -22.9, J 135"),
+}

@@ -55,9 +55,9 @@ def test_every_map_has_the_template_grid(demo, template):
     from ceiling.outputs.names import ENSEMBLE_LAYERS, FUTURE_LAYERS, PRESENT_LAYERS
     from ceiling.projection import FUTURE_BOUNDS, PRESENT_BOUNDS
 
-    # 12 futures and 4 ensembles (2 scenarios x 2 periods) per species; the demo fits bootstrap
-    # replicates, so present and futures also carry their bounds
-    per_species = (len(PRESENT_LAYERS) + len(PRESENT_BOUNDS) + 12 * (len(FUTURE_LAYERS) + len(FUTURE_BOUNDS))
+    # 16 futures (2 scenarios x 4 climate models x 2 periods) and 4 ensembles per species; the demo
+    # fits bootstrap replicates, so present and futures also carry their bounds
+    per_species = (len(PRESENT_LAYERS) + len(PRESENT_BOUNDS) + 16 * (len(FUTURE_LAYERS) + len(FUTURE_BOUNDS))
                    + 4 * len(ENSEMBLE_LAYERS))
     assert len(tifs) == len(SPECIES) * per_species
     for p in everything:
@@ -213,7 +213,7 @@ def test_netcdf_attributes(demo):
         assert ds["crs"].grid_mapping_name == "latitude_longitude"
         assert ds["crs"].semi_major_axis == 6378137.0
         assert list(ds["species_name"][:]) == SPECIES
-        assert ds.dimensions["climate"].size == 12
+        assert ds.dimensions["climate"].size == 16  # 2 scenarios x 4 climate models x 2 periods
         assert ds["x"].units == "degrees_east" and ds["y"].units == "degrees_north"
         area = ds["cell_area"]
         assert area.units == "m2" and area.standard_name == "cell_area"

@@ -37,8 +37,9 @@ from projection_helpers import (
 )
 
 SPECIES = ["sp_a", "sp_b", "sp_c"]
-FUTURES = [(s, m, p) for m in ("model-a", "model-b", "model-c") for s in ("ssp245", "ssp585")
-           for p in ("2041-2070", "2071-2100")]
+FUTURES = [(s, m, p) for m in ("model-a", "model-b", "model-c", "model-d") for s in ("ssp245", "ssp585")
+           for p in ("2041-2070", "2071-2100")]  # model-d: raw series, derived in the run
+N_CLIMATES = 1 + len(FUTURES)
 ZONES = ["stable", "release", "constraint", "opens", "closes", "absent"]
 
 
@@ -54,9 +55,9 @@ def _sha(p: Path) -> str:
 def test_demo_prints_progress_and_the_headline_table(demo):
     out, res = demo
     err = res.stderr.splitlines()
-    progress = [ln for ln in err if re.match(r"^\[\d+/13\] ", ln)]
-    assert len(progress) == 13, err
-    assert progress[0].startswith("[1/13] present")
+    progress = [ln for ln in err if re.match(rf"^\[\d+/{N_CLIMATES}\] ", ln)]
+    assert len(progress) == N_CLIMATES, err
+    assert progress[0].startswith(f"[1/{N_CLIMATES}] present")
     for s, m, p in FUTURES:
         assert any(f"{s} / {m} / {p}" in ln for ln in progress), (s, m, p)
     assert "Traceback" not in res.stderr and "error:" not in res.stderr
@@ -154,15 +155,15 @@ def test_demo_manifest(demo):
     resolved = {str(Path(e["path"]).resolve()) for e in ins}
     grids = REPO / "demo_grids"
     expected = {grids / "survey.csv"} | set((grids / "present").glob("*.tif")) | set((grids / "future").rglob("*.tif")) \
-        | set((grids / "future").rglob("*.nc"))
+        | set((grids / "future").rglob("*.nc")) | set((grids / "baseline").glob("*.tif")) | set((grids / "series").rglob("*.nc"))
     assert {str(p.resolve()) for p in expected} <= resolved
-    assert len(expected) == 1 + 4 + 8 * 4 + 4
+    assert len(expected) == 1 + 4 + 8 * 4 + 4 + 36 + 15  # + the monthly baseline and model-d's series
     for e in ins:
         p = Path(e["path"])
         assert e["size"] == p.stat().st_size and e["sha256"] == _sha(p), e["path"]
     assert man["config"]["sha256"] == _sha(REPO / "configs" / "demo.toml")
     assert man["model"]["sha256"] == _sha(out / "model.json")
-    assert len(man["climates"]) == 13
+    assert len(man["climates"]) == N_CLIMATES
 
 
 # --- bad input ------------------------------------------------------------------------------------

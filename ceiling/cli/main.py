@@ -41,6 +41,7 @@ def _register() -> None:
     from .summarize import summarize as summarize_cmd  # regions: zones.csv / zones.gpkg
     cli.add_command(summarize_cmd)
     from .report import report as report_cmd; cli.add_command(report_cmd)  # noqa: E702, I001  figures + report.html
+    from .derive import derive as derive_cmd; cli.add_command(derive_cmd)  # noqa: E702, I001  factor layers from series
 
 
 _register()
