@@ -7,6 +7,10 @@ climate grids. A ceiling is a potential upper limit, not a forecast of abundance
 
 from importlib.metadata import PackageNotFoundError, version
 
+from .numba_cache import configure_numba_cache
+
+configure_numba_cache()  # before any kernel is compiled: the cache goes where the user can write
+
 try:
     __version__ = version("ceiling")
 except PackageNotFoundError:  # running from a source tree that is not installed

@@ -120,7 +120,7 @@ def write_climate(
     """
     timings = timings if timings is not None else {}
     done = stage / done_record_name(climate.key)
-    reused = _reuse_climate(done, stage, n_stats) if record else None
+    reused = _reuse_climate(done, stage, n_stats, climate.key) if record else None
     if reused is not None:
         if say is not None:
             say(f"      {climate.label}: reused {len(reused[0])} complete files (--resume)")
@@ -176,7 +176,7 @@ def write_climate(
         raise
     sums.close()
     if record:
-        _write_done_record(done, stage, written, stats)
+        _write_done_record(done, stage, written, stats, climate.key)
     return written, stats
 
 
@@ -237,33 +237,42 @@ def _stream(comp: Compute, plan: Any, grid: GridSpec, chunk: int, streams: list[
 # --- resume records: one per climate, written once its files are final ------------------------
 
 def done_record_name(key: tuple[str, str, str]) -> str:
+    """The record of one climate, named from its full names (scenario, climate model, period),
+    not from its folder: names that differ only where folder names cannot never share one."""
+    import hashlib
+
     from .outputs.folder import DONE_PREFIX
-    from .outputs.names import safe_part
 
-    return DONE_PREFIX + "__".join(safe_part(k) for k in key) + ".json"
+    digest = hashlib.sha256(json.dumps([str(k) for k in key]).encode("utf-8")).hexdigest()[:24]
+    return f"{DONE_PREFIX}{digest}.json"
 
 
-def _write_done_record(record: Path, stage: Path, written: list[Path], vectors: list[np.ndarray]) -> None:
+def _write_done_record(record: Path, stage: Path, written: list[Path], vectors: list[np.ndarray],
+                       key: tuple[str, str, str]) -> None:
     """List a climate's finished files (with sha256) and its summary vectors, for ``--resume``."""
     from .outputs.atomic import sha256_file
 
-    doc = {"files": {str(p.relative_to(stage)): sha256_file(p) for p in written},
+    doc = {"climate": [str(k) for k in key], "files": {str(p.relative_to(stage)): sha256_file(p) for p in written},
            "vectors": [np.asarray(v, dtype=np.float64).tolist() for v in vectors]}
     atomic_write_text(record, json.dumps(doc))
 
 
-def _reuse_climate(record: Path, stage: Path, n_vectors: int) -> tuple[list[Path], list[np.ndarray]] | None:
+def _reuse_climate(record: Path, stage: Path, n_vectors: int,
+                   key: tuple[str, str, str]) -> tuple[list[Path], list[np.ndarray]] | None:
     """The files and summary vectors of a climate completed by an interrupted run, or None when
-    there is no record or any listed file is missing or differs from its checksum."""
+    there is no record, the record is of another climate, or any listed file is missing or
+    differs from its checksum."""
     from .outputs.atomic import sha256_file
 
     if not record.is_file():
         return None
     try:
         doc = json.loads(record.read_text(encoding="utf-8"))
+        if doc["climate"] != [str(k) for k in key]:
+            return None
         files = [(stage / rel, sha) for rel, sha in doc["files"].items()]
         vectors = [np.asarray(v, dtype=np.float64) for v in doc["vectors"]]
-    except (ValueError, KeyError, TypeError, AttributeError):
+    except (ValueError, KeyError, TypeError, AttributeError, RecursionError):
         return None
     if len(vectors) != n_vectors or not all(p.is_file() and sha256_file(p) == sha for p, sha in files):
         record.unlink(missing_ok=True)

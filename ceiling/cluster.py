@@ -14,6 +14,7 @@ functions on the same inputs, and written in a fixed order.
 from __future__ import annotations
 
 import contextlib
+import numbers
 import os
 import threading
 import uuid
@@ -25,7 +26,7 @@ import dask
 
 from .errors import ConfigError
 
-__all__ = ["Compute", "compute_context"]
+__all__ = ["Compute", "compute_context", "check_compute"]
 
 
 @dataclass
@@ -59,10 +60,18 @@ class Compute:
         return f"dask.distributed {self.kind} ({self.workers} workers)"
 
 
-@contextlib.contextmanager
-def compute_context(*, workers: int | None = None, address: str | None = None, threads: int | None = None) -> Iterator[Compute]:
+def check_compute(*, workers: int | None = None, address: str | None = None, threads: int | None = None) -> None:
+    """Refuse compute settings that cannot work (before any work is done)."""
     if workers is not None and address is not None:
         raise ConfigError("--workers and --scheduler exclude each other; give one")
+    for name, v in (("--threads", threads), ("--workers", workers)):
+        if v is not None and (isinstance(v, bool) or not isinstance(v, numbers.Integral) or v < 1):
+            raise ConfigError(f"{name} must be a whole number of at least 1; got {v!r}; leave it out to use every core")
+
+
+@contextlib.contextmanager
+def compute_context(*, workers: int | None = None, address: str | None = None, threads: int | None = None) -> Iterator[Compute]:
+    check_compute(workers=workers, address=address, threads=threads)
     if workers is None and address is None:
         n = threads or os.cpu_count() or 1
         yield Compute("threads", n, threading.Lock(), kwargs={"scheduler": "threads", "num_workers": n})
@@ -84,8 +93,6 @@ def compute_context(*, workers: int | None = None, address: str | None = None, t
             n = len(client.scheduler_info().get("workers", {}))
             yield Compute("cluster", n, Lock("ceiling-write"), client, {"scheduler": client})
         return
-    if workers < 1:
-        raise ConfigError(f"--workers must be at least 1; got {workers}")
     with LocalCluster(n_workers=workers, threads_per_worker=1, processes=True, host="127.0.0.1",
                       dashboard_address=None, silence_logs=logging.WARNING) as cluster, Client(cluster) as client:
         yield Compute("local-cluster", workers, Lock("ceiling-write"), client, {"scheduler": client})

@@ -66,7 +66,7 @@ from .errors import DataError
 from .grids import BlockReader, GridSpec, inspect_layer
 from .outputs.atomic import TMP_PREFIX, atomic_write_text
 from .outputs.geotiff import CODE_NODATA, WindowTarget, create_tiled, finalize_cog
-from .outputs.names import ENSEMBLE, climate_dir, layer_path, safe_part
+from .outputs.names import COMMUNITY_DIR, ENSEMBLE, climate_dir, layer_path, safe_part
 from .scenarios import PRESENT, LayerRef, _Strict, _validate
 
 __all__ = [
@@ -74,7 +74,6 @@ __all__ = [
     "CommunityOptions", "CommunityRun", "community_options", "build_community", "community_path",
 ]
 
-COMMUNITY_DIR = "community"
 COMMUNITY_FILE = "community.csv"
 COMMUNITY_PRESENT_LAYERS = ("total_ceiling", "richness")
 COMMUNITY_FUTURE_LAYERS = ("total_ceiling", "total_change", "richness", "richness_change", "n_release", "n_constraint")

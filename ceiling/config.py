@@ -10,6 +10,7 @@ from __future__ import annotations
 import difflib
 import math
 import tomllib
+import typing
 from pathlib import Path
 from typing import Any, Literal
 
@@ -25,7 +26,9 @@ __all__ = [
     "FitConfig",
     "load_config",
     "parse_config",
+    "OutputsConfig",
     "validate_section",
+    "format_error",
 ]
 
 Basis = Literal["linear", "quadratic", "spline"]
@@ -157,6 +160,14 @@ class FitConfig(_Section):
         return v
 
 
+class OutputsConfig(_Section):
+    """``[outputs]``: its tables are validated by the stages that make them (ceiling.zones,
+    ceiling.community); here only their names."""
+
+    zones: dict[str, Any] | None = None
+    community: dict[str, Any] | None = None
+
+
 class RunConfig(_Section):
     """A whole run: the survey, the factors and the fit settings.
 
@@ -206,52 +217,38 @@ class RunConfig(_Section):
         return [f.name for f in self.factors]
 
 
-def _allowed_keys(model: type[BaseModel]) -> list[str]:
-    return [k for k in model.model_fields if k != "source"]
+def _models_in(annotation: Any) -> list[type[BaseModel]]:
+    """The pydantic models an annotation holds (``list[M]``, ``dict[str, str | M]``, ``M | None``)."""
+    if isinstance(annotation, type) and issubclass(annotation, BaseModel):
+        return [annotation]
+    return [m for a in typing.get_args(annotation) for m in _models_in(a)]
 
 
-def _nested_model(model: type[BaseModel], key: str) -> type[BaseModel] | None:
-    """The pydantic model a field of ``model`` holds (directly, in a list, a mapping or an optional)."""
-    field = model.model_fields.get(key)
-    todo, seen = [field.annotation] if field is not None else [], 0
-    while todo and seen < 20:
-        t, seen = todo.pop(), seen + 1
-        if isinstance(t, type) and issubclass(t, BaseModel):
-            return t
-        todo.extend(getattr(t, "__args__", ()))
-    return None
+def _section_for(root: type[BaseModel], loc: tuple[Any, ...]) -> tuple[type[BaseModel], tuple[Any, ...]]:
+    """The model whose key ``loc[-1]`` is, and ``loc`` without pydantic's union-member tags."""
+    model, shown = root, []
+    for part in loc[:-1]:
+        if isinstance(part, str) and part in model.model_fields:
+            inner = _models_in(model.model_fields[part].annotation)
+            model = inner[0] if inner else model
+        elif isinstance(part, str) and (part in ("str", "int", "float", "bool") or part.startswith(("list[", "dict["))
+                                        or part == model.__name__):
+            continue  # the tag of a union member (e.g. '_LayerSpec'), not a key of the config
+        shown.append(part)
+    return model, (*shown, loc[-1]) if loc else ()
 
 
-def _section_for(loc: tuple[Any, ...], roots: dict[str, type[BaseModel]] | None = None) -> type[BaseModel]:
-    model: type[BaseModel] = RunConfig
-    sections = {"survey": SurveyConfig, "factors": FactorConfig, "fit": FitConfig, **(roots or {})}
-    for i, part in enumerate(loc[:-1]):
-        if i == 0 and isinstance(part, str) and part in sections:
-            model = sections[part]
-        elif isinstance(part, str) and (inner := _nested_model(model, part)) is not None:
-            model = inner
-    return model
-
-
-def validate_section(model: type[BaseModel], data: Any, *, where: str, source: Path | str | None) -> Any:
-    """Validate a free section (``[derive]``, ...) with ``model``; a bad value gets the one-line message of
-    every other config error (unknown keys with the closest valid key of their own table)."""
-    try:
-        return model.model_validate(data if data is not None else {})
-    except ValidationError as exc:
-        errors = exc.errors()
-        err = next((e for e in errors if e.get("type") == "extra_forbidden"), errors[0])
-        loc = (where, *(p for p in err.get("loc", ()) if not (isinstance(p, str) and p[:1].isupper() or p in ("str",))))
-        raise ConfigError(_format_error({**err, "loc": loc}, source or "config", roots={where: model})) from None
-
-
-def _format_error(err: dict[str, Any], path: Path | str, roots: dict[str, type[BaseModel]] | None = None) -> str:
-    loc = tuple(err.get("loc", ()))
-    dotted = ".".join(str(p) for p in loc) or "(top level)"
+def format_error(err: dict[str, Any], path: Path | str, root: type[BaseModel] | None = None,
+                 where: tuple[Any, ...] = ()) -> str:
+    """One line for one pydantic error of a config ``root`` section at ``where`` (the only
+    formatter of config errors: unknown keys get the closest valid key or the list of keys)."""
+    root = RunConfig if root is None else root
+    model, loc = _section_for(root, tuple(err.get("loc", ())))
+    dotted = ".".join(str(p) for p in (*where, *loc)) or "(top level)"
     kind = err.get("type", "")
     if kind == "extra_forbidden":
         key = str(loc[-1])
-        allowed = _allowed_keys(_section_for(loc, roots))
+        allowed = [k for k in model.model_fields if k != "source"]
         close = difflib.get_close_matches(key, allowed, n=1, cutoff=0.5)
         hint = f"did you mean '{close[0]}'?" if close else f"valid keys: {', '.join(allowed)}"
         return f"{path}: unknown key '{dotted}'; {hint}"
@@ -265,12 +262,31 @@ def _format_error(err: dict[str, Any], path: Path | str, roots: dict[str, type[B
     return f"{path}: '{dotted}': {msg}{shown}"
 
 
+def _format_error(err: dict[str, Any], path: Path | str) -> str:  # kept for existing callers
+    return format_error(err, path)
+
+
+def validate_section(model: type[BaseModel], data: Any, where: str, source: Path | str | None) -> Any:
+    """Validate one table of a config (``where``: its dotted name) against ``model``; the first
+    error, unknown keys first, becomes one :class:`ConfigError` line from :func:`format_error`."""
+    try:
+        return model.model_validate(data if data is not None else {})
+    except ValidationError as exc:
+        errors = exc.errors()
+        extra = [e for e in errors if e.get("type") == "extra_forbidden"]
+        where_loc = tuple(p for p in where.split(".") if p)
+        raise ConfigError(format_error((extra or errors)[0], source or "config", model, where_loc)) from None
+
+
 def parse_config(data: dict[str, Any], *, base: Path | None = None, source: Path | str = "config") -> RunConfig:
     """Validate a config mapping and resolve relative paths against ``base``."""
     try:
         cfg = RunConfig.model_validate(data)
     except ValidationError as exc:
-        raise ConfigError(_format_error(exc.errors()[0], source)) from None
+        errors = exc.errors()
+        extra = [e for e in errors if e.get("type") == "extra_forbidden"]
+        raise ConfigError(format_error((extra or errors)[0], source)) from None
+    validate_section(OutputsConfig, cfg.outputs, "outputs", source)  # its tables are checked by their stages
     if base is None:
         return cfg
     return resolve_paths(cfg, base, source)
@@ -304,4 +320,6 @@ def load_config(path: str | Path) -> RunConfig:
         raise ConfigError(f"{path}: not valid TOML ({exc}); fix the syntax at that line") from None
     except UnicodeDecodeError:
         raise ConfigError(f"{path}: not a text file; a config must be UTF-8 TOML") from None
+    except RecursionError:
+        raise ConfigError(f"{path}: tables nested too deeply; a config needs a few levels at most") from None
     return parse_config(data, base=path.resolve().parent, source=path)

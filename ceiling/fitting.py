@@ -23,13 +23,22 @@ from .figures import fit_figure, fit_panel
 from .model import CeilingModel, FactorSpec, ModelSet, fit
 from .outputs.atomic import atomic_write_text
 from .outputs.folder import check_output_folder, staged_folder
-from .outputs.names import DIAGNOSTICS_FILE, MODEL_FILE, fit_figure_name, fit_panel_name
+from .outputs.names import (
+    DIAGNOSTICS_FILE,
+    MODEL_FILE,
+    check_distinct,
+    fit_figure_name,
+    fit_panel_name,
+    path_parts,
+)
 from .samples import Samples, load_samples
+from .scenarios import check_sections
 from .uncertainty import bootstrap_model
 
 SELECTION_FILE = "selection.csv"
 
-__all__ = ["FitRun", "fit_config", "write_fit", "fit_to_folder", "factor_specs", "config_inputs"]
+__all__ = ["FitRun", "fit_config", "write_fit", "fit_to_folder", "factor_specs", "config_inputs", "check_species_names",
+           "with_companions"]
 
 
 @dataclass(frozen=True)
@@ -101,7 +110,22 @@ def factor_specs(cfg: RunConfig) -> list[FactorSpec]:
 
 
 def config_inputs(cfg: RunConfig) -> list[Path]:
-    return [cfg.survey.path] + [f.layer for f in cfg.factors if f.layer is not None]
+    """The survey (with a shapefile's companion files) and the factor layers."""
+    return with_companions([cfg.survey.path]) + [f.layer for f in cfg.factors if f.layer is not None]
+
+
+# files GDAL reads beside a shapefile: they shape what is read as much as the .shp itself
+SHAPEFILE_COMPANIONS = (".shx", ".dbf", ".prj", ".cpg")
+
+
+def with_companions(paths: list[Path]) -> list[Path]:
+    """``paths`` with the existing companion files of each shapefile after it."""
+    out = []
+    for p in paths:
+        out.append(Path(p))
+        if Path(p).suffix.lower() == ".shp":
+            out += [q for ext in SHAPEFILE_COMPANIONS for q in (Path(p).with_suffix(ext),) if q.is_file()]
+    return out
 
 
 def _sha256(path: Path | None) -> str | None:
@@ -117,6 +141,7 @@ def fit_config(cfg: RunConfig) -> FitRun:
     replicates (:func:`ceiling.uncertainty.bootstrap_model`, seeded by ``fit.bootstrap_seed``,
     resampling spatial blocks of ``fit.bootstrap_block`` map units when set).
     """
+    check_sections(cfg)  # the sections this stage does not use are refused now too, not at projection
     for f in cfg.factors:
         if f.layer is not None and not Path(f.layer).is_file():
             raise InputFileError(f"layer file not found for factor '{f.name}': {f.layer}; check factors.layer in the config")
@@ -124,11 +149,18 @@ def fit_config(cfg: RunConfig) -> FitRun:
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", CeilingWarning)
         samples = load_samples(cfg, species=cfg.fit.species)
+        check_species_names(list(samples), [f.name for f in cfg.factors], where=f"{cfg.survey.path} (survey.species)")
         specs = factor_specs(cfg)
         models: dict[str, CeilingModel] = {}
         for sp, s in samples.items():
             if s.n == 0:
                 raise DataError(f"species '{sp}': no usable survey points; check the survey and the layers")
+            if not np.any(s.abundance > 0):
+                warnings.warn(
+                    f"species '{sp}': all {s.n} usable survey points have abundance 0, so its ceilings are 0 "
+                    f"everywhere; check survey.abundance ('{cfg.survey.abundance}') and the survey", CeilingWarning,
+                    stacklevel=2,
+                )
         tau, transform, selection = cfg.fit.tau, cfg.fit.transform, None
         if cfg.fit.select:
             from .selection import select_settings
@@ -171,6 +203,15 @@ def fit_config(cfg: RunConfig) -> FitRun:
     return FitRun(ModelSet(models, provenance), samples, caught_all, selection)
 
 
+def check_species_names(species: list[str], factors: list[str], *, where: str) -> None:
+    """Refuse species whose folders, or whose fit figures (``fit_{species}_{factor}.png``), would
+    coincide (:func:`ceiling.outputs.names.path_parts`)."""
+    path_parts("species", species, where=where)
+    figures = [(f"species '{sp}' factor '{f}'", fit_figure_name(sp, f).name) for sp in species for f in factors]
+    figures += [(f"species '{sp}' (all factors)", fit_panel_name(sp).name) for sp in species]
+    check_distinct(figures, what="figure", where=where)
+
+
 def write_fit(run: FitRun, out_dir: Path) -> list[Path]:
     """Write the model file, the diagnostics CSV and the fit figures into ``out_dir``."""
     out_dir = Path(out_dir)
@@ -192,9 +233,10 @@ def write_fit(run: FitRun, out_dir: Path) -> list[Path]:
 
 def fit_to_folder(cfg: RunConfig, out_dir: Path, *, overwrite: bool = False) -> tuple[FitRun, list[Path]]:
     """Check the output folder, fit, then write everything into it at once."""
-    check_output_folder(out_dir, overwrite=overwrite, inputs=config_inputs(cfg))
+    protect = config_inputs(cfg) + ([Path(cfg.source)] if cfg.source else [])
+    target = check_output_folder(out_dir, overwrite=overwrite, inputs=protect)
     run = fit_config(cfg)
-    with staged_folder(out_dir, overwrite=overwrite) as stage:
+    with staged_folder(target, overwrite=overwrite) as stage:
         written = write_fit(run, stage)
     return run, [Path(out_dir) / p.relative_to(stage) for p in written]
 

@@ -29,7 +29,8 @@ from .errors import DataError, InputFileError
 from .scenarios import LayerRef
 from .units import linear_conversion
 
-__all__ = ["GridSpec", "LayerInfo", "BlockReader", "inspect_layer", "layer_reader", "open_layer", "gdal_name", "template_grid"]
+__all__ = ["GridSpec", "LayerInfo", "BlockReader", "inspect_layer", "layer_reader", "open_layer", "gdal_name", "template_grid",
+           "source_cells_per_chunk", "MAX_WARP_CELLS"]
 
 
 @dataclass(frozen=True)
@@ -107,6 +108,9 @@ def inspect_layer(ref: LayerRef, *, factor: str) -> LayerInfo:
     where = f"layer of '{factor}' ({ref.describe()})"
     if not path.is_file():
         raise InputFileError(f"{where}: file not found; check the path in the config")
+    if ref.variable and '"' in str(path):
+        raise DataError(f"{where}: the path holds a double quote (\"), which GDAL cannot open as a NetCDF variable "
+                        "(NETCDF:\"file\":variable); rename the file or its folder without the quote")
     if ref.variable and ref.variable not in (names := _variable_names(path)):
         raise DataError(
             f"{where}: the NetCDF file has no variable '{ref.variable}'; it has {', '.join(names) or 'none'}: fix 'variable'"
@@ -235,6 +239,12 @@ class BlockReader:
             data = self._read(window)
         except (RasterioIOError, rasterio.errors.WarpOperationError) as exc:
             detail = str(exc.__cause__ or exc.__context__ or exc).splitlines()[0]
+            if "cannot allocate" in detail.lower() or "out of memory" in detail.lower():
+                raise DataError(
+                    f"layer {self.name}: reading rows {r0}-{r1}, columns {c0}-{c1} needs more memory than there is "
+                    f"({detail}); the layer is too large for its window of the template grid: resample it nearer "
+                    "to the template's resolution first (e.g. gdalwarp -tr)"
+                ) from None
             raise InputFileError(
                 f"layer {self.name}: reading rows {r0}-{r1}, columns {c0}-{c1} failed ({detail}); the file is "
                 "truncated or corrupt: re-create or re-download it"
@@ -247,15 +257,43 @@ class BlockReader:
         return out.astype(np.float32)
 
 
+# the most cells of a layer that one chunk of the template may need to read when the layer is
+# warped (8 GiB of float32); a far finer layer is refused before any work, with its size as the cause
+MAX_WARP_CELLS = 2**31
+
+
+def source_cells_per_chunk(info: LayerInfo, template: GridSpec, chunk: int) -> float:
+    """About how many cells of a layer not on the template grid one template chunk covers."""
+    from rasterio.warp import transform_bounds
+
+    if info.grid.matches(template):
+        return float(min(chunk, template.height) * min(chunk, template.width))
+    try:
+        west, south, east, north = transform_bounds(template.crs, info.grid.crs, *template.bounds, densify_pts=21)
+    except Exception:
+        return 0.0  # cannot tell; the read reports what goes wrong
+    cell = abs(info.grid.transform[0] * info.grid.transform[4])
+    per_cell = abs(east - west) * abs(north - south) / cell / (template.width * template.height)
+    return per_cell * min(chunk, template.height) * min(chunk, template.width)
+
+
 def layer_reader(
     ref: LayerRef, template: GridSpec, *, factor: str, units: str | None, resampling: str = "bilinear",
-    cache_mb: int = 64,
+    cache_mb: int = 64, chunk: int = 1024,
 ) -> BlockReader:
     """The chunk reader of a layer on the template grid, in ``units`` (checked, nothing read)."""
     info = inspect_layer(ref, factor=factor)
     where = f"layer of '{factor}' ({ref.describe()})"
     if not _overlaps(info.grid, template):
         raise DataError(f"{where}: does not overlap the template grid (bounds {info.grid.bounds}); check the layer's extent and CRS")
+    need = source_cells_per_chunk(info, template, chunk)
+    if need > MAX_WARP_CELLS:
+        raise DataError(
+            f"{where}: {info.grid.width:,} x {info.grid.height:,} cells, so fine beside the template grid "
+            f"({template.width:,} x {template.height:,}) that one chunk would read about {need:.2g} of its cells "
+            f"({need * 4 / 2**30:,.0f} GiB); its size is the cause: resample it nearer to the template's resolution "
+            "first (e.g. gdalwarp -tr)"
+        )
     if units is None:
         scale, offset = 1.0, 0.0
     elif info.units is None:
@@ -273,7 +311,8 @@ def open_layer(
     resampling: str = "bilinear", cache_mb: int = 64,
 ) -> xr.DataArray:
     """A lazy, aligned, unit-converted layer on the template grid."""
-    reader = layer_reader(ref, template, factor=factor, units=units, resampling=resampling, cache_mb=cache_mb)
+    reader = layer_reader(ref, template, factor=factor, units=units, resampling=resampling, cache_mb=cache_mb,
+                          chunk=chunk)
     arr = da.from_array(reader, chunks=(chunk, chunk), asarray=True, fancy=False, lock=False,
                         name=f"layer-{factor}-{tokenize(reader.name, template, reader.scale, reader.offset, resampling)}",
                         meta=np.empty((0, 0), np.float32))

@@ -73,6 +73,7 @@ from .outputs.names import (  # noqa: E402
     climate_dir,
     safe_part,
 )
+from .processes import parent_gone, worker_init  # noqa: E402
 
 __all__ = [
     "DPI", "MAX_SIDE", "MapLayer", "RunInfo", "read_layer", "run_info", "species_limits",
@@ -1138,6 +1139,8 @@ def _run_tasks(job: tuple[str, list[tuple[_Task, Limits | None]], tuple[str, ...
         info = _INFO[root] = run_info(root)
     written = []
     for task, limits in batch:
+        if parent_gone(root):  # a figure process whose run has ended writes nothing more
+            os._exit(1)
         fig = _build(info, task, limits)
         if fig is None:
             continue
@@ -1182,7 +1185,9 @@ def make_figures(run_dir: str | Path, *, formats: Sequence[str] = ("png",), miss
     batches = [items[i:i + size] for i in range(0, len(items), size)]
     with warnings.catch_warnings():
         warnings.filterwarnings("ignore", message=".*multi-threaded.*fork.*", category=DeprecationWarning)
-        with ProcessPoolExecutor(max_workers=n, mp_context=multiprocessing.get_context("fork")) as pool:
+        # the workers end with this process, even when it is killed (ceiling.processes)
+        with ProcessPoolExecutor(max_workers=n, mp_context=multiprocessing.get_context("fork"),
+                                 initializer=worker_init, initargs=(os.getpid(),)) as pool:
             done = list(pool.map(_run_tasks, [(str(root), b, fmts) for b in batches if b]))
     order = {t.stem: i for i, t in enumerate(tasks)}
     paths = [Path(p) for batch in done for p in batch]

@@ -580,6 +580,8 @@ def load_models(path: str | Path) -> ModelSet:
         data = json.loads(path.read_text(encoding="utf-8"), parse_constant=lambda c: math.nan)
     except (UnicodeDecodeError, json.JSONDecodeError) as exc:
         raise ModelFileError(f"{path}: not valid JSON ({exc}); re-create it with 'ceiling fit'") from None
+    except RecursionError:
+        raise ModelFileError(f"{path}: nested too deeply to be a model file; re-create it with 'ceiling fit'") from None
     return _parse(data, str(path))
 
 

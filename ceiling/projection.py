@@ -51,7 +51,7 @@ def climate_readers(
     if missing:
         raise DataError(f"climate {climate.label} has no layer for factor(s) {', '.join(missing)}; add them to the config")
     return {f: layer_reader(climate.layers[f], template, factor=f, units=units[f], resampling=opts.resampling,
-                            cache_mb=opts.gdal_cache_mb) for f in factors}
+                            cache_mb=opts.gdal_cache_mb, chunk=opts.chunk) for f in factors}
 
 
 def open_climate(

@@ -38,7 +38,7 @@ from .climate_writer import (
     readback_reader,
     write_climate,
 )
-from .cluster import compute_context
+from .cluster import check_compute, compute_context
 from .config import RunConfig
 from .derive.stage import derive_for_run, derive_inputs
 from .errors import DataError
@@ -56,6 +56,7 @@ from .outputs.names import (
     SUMMARY_FILE,
     TRANSITIONS_FILE,
     layer_path,
+    path_parts,
 )
 from .outputs.netcdf import NetcdfWriter, create_netcdf
 from .outputs.stream import StreamReader
@@ -69,10 +70,19 @@ from .projection import (
     novel_rule,
     with_policy,
 )
-from .scenarios import PRESENT, Climate, LayerRef, ProjectionOptions, climates, projection_options
+from .scenarios import (
+    PRESENT,
+    Climate,
+    LayerRef,
+    ProjectionOptions,
+    climates,
+    option_path,
+    projection_options,
+)
 from .tasks import ClimatePlan, EnsemblePlan
 
-__all__ = ["ProjectionRun", "RunResult", "run_projection", "project_to_folder", "LAYER_META", "done_record_name"]
+__all__ = ["ProjectionRun", "RunResult", "run_projection", "project_to_folder", "run_inputs", "LAYER_META",
+           "done_record_name"]
 
 log = logging.getLogger(__name__)
 
@@ -174,8 +184,9 @@ def output_bytes(grid: GridSpec, n_species: int, climates_: Sequence[Climate], *
 
 
 def run_fingerprint(cfg: RunConfig, inputs: Sequence[Path], model_path: Path | None) -> str:
-    """What an interrupted run must share with its resumption: config text, model file and the
-    inputs (path, size, modification time)."""
+    """What an interrupted run must share with its resumption: the config's text and its
+    validated form (which holds command-line overrides such as --bootstrap), the model file and
+    every input that shapes the result (path, size, modification time; :func:`run_inputs`)."""
     import hashlib
     import json
 
@@ -185,13 +196,28 @@ def run_fingerprint(cfg: RunConfig, inputs: Sequence[Path], model_path: Path | N
         try:
             st = Path(p).stat()
             return [str(Path(p).resolve()), st.st_size, st.st_mtime_ns]
-        except OSError:
+        except (OSError, RuntimeError):
             return [str(p), None, None]
 
     src = Path(cfg.source) if cfg.source else None
-    doc = {"version": __version__, "config": src.read_text(encoding="utf-8") if src and src.is_file() else cfg.model_dump_json(),
-           "model": stat(model_path) if model_path else None, "inputs": sorted(stat(p) for p in inputs)}
+    doc = {"version": __version__, "config": src.read_text(encoding="utf-8") if src and src.is_file() else "",
+           "settings": cfg.model_dump_json(), "model": stat(model_path) if model_path else None,
+           "inputs": sorted(stat(p) for p in inputs)}
     return hashlib.sha256(json.dumps(doc, sort_keys=True).encode()).hexdigest()
+
+
+def run_inputs(cfg: RunConfig, cl: Sequence[Climate], model_path: Path | None, zones: Path | None) -> list[Path]:
+    """Every file that shapes a projection's result, once each: the survey and factor layers,
+    every climate's layers, the template, the mask, the zones and the model file. They are
+    listed in the manifest, fingerprinted for --resume and protected from --overwrite."""
+    from .fitting import config_inputs, with_companions
+
+    opts = projection_options(cfg)
+    files = config_inputs(cfg) + _all_layer_paths(list(cl)) + derive_inputs(cfg, list(cl))
+    files += with_companions([p for p in (option_path(cfg, opts.template), option_path(cfg, opts.mask)) if p])
+    files += [Path(model_path)] if model_path else []
+    files += with_companions([Path(zones)]) if zones else []
+    return list(dict.fromkeys(Path(p) for p in files))
 
 
 def run_projection(
@@ -212,7 +238,8 @@ def run_projection(
                             "use the model file fitted with this config")
     used = [f for f in factors if any(f in m.factor_names for m in ms)]
     units = model_units(ms, used)
-    tref = LayerRef(Path(opts.template)) if opts.template else cl[0].layers[used[0]]
+    path_parts("species", [m.species for m in ms], where="the model's species")
+    tref = LayerRef(option_path(cfg, opts.template)) if opts.template else cl[0].layers[used[0]]
     grid = template_grid(tref, factor=used[0])
     mask = _mask(opts, grid, cfg)
     layouts = [_layout(m) for m in ms]
@@ -311,9 +338,7 @@ def _mask(opts: ProjectionOptions, grid: GridSpec, cfg: RunConfig) -> xr.DataArr
         return None
     from .masks import open_mask
 
-    base = Path(cfg.source).resolve().parent if cfg.source else Path.cwd()
-    p = Path(opts.mask)
-    return open_mask(p if p.is_absolute() else base / p, grid, chunk=opts.chunk)
+    return open_mask(option_path(cfg, opts.mask), grid, chunk=opts.chunk)
 
 
 def _netcdf(stage: Path, grid: GridSpec, ms: list[CeilingModel], cl: list[Climate], opts: ProjectionOptions,
@@ -390,20 +415,19 @@ def project_to_folder(
     With ``resume``, the staging folder of an interrupted run on the same config and inputs is
     kept, and every climate whose completion record matches the files on disk is reused.
     """
-    from .fitting import config_inputs
     from .outputs.atomic import Prefetch
     from .outputs.folder import check_output_folder
 
     t_start = time.perf_counter()
+    check_compute(workers=workers, address=address, threads=threads)
     cl = climates(cfg)
     projection_options(cfg)
-    inputs = config_inputs(cfg) + _all_layer_paths(cl) + derive_inputs(cfg, cl) + ([Path(model_path)] if model_path else [])
     # regions and community layers ([outputs.zones], [outputs.community]): a bad table or zones file is refused now
     from .community import community_options
     from .zones import load_zones_config
     zones_in, community_opts = load_zones_config(cfg), community_options(cfg)
-    inputs += [zones_in.source] if zones_in is not None else []
-    check_output_folder(out, overwrite=overwrite, inputs=inputs)
+    inputs = run_inputs(cfg, cl, model_path, zones_in.source if zones_in is not None else None)
+    out = check_output_folder(out, overwrite=overwrite, inputs=inputs + ([Path(cfg.source)] if cfg.source else []))
     # the inputs' checksums for the manifest, read beside the projection rather than after it
     checksums = Prefetch(dict.fromkeys(inputs))
     try:
@@ -430,6 +454,7 @@ def _project_to_folder(cfg: RunConfig, out: Path, cl: list[Climate], inputs: lis
     fit_run = None
     if model_path is not None:
         models = load_models(model_path)
+        path_parts("species", models.species, where=str(model_path))
     else:
         fit_run = fit_config(cfg)
         models = fit_run.models

@@ -5,10 +5,14 @@ geometry), checks the abundance column, and takes each factor's value either fro
 the table or by sampling a present-day layer at the points (points are reprojected to the
 layer's CRS; nearest cell by default, bilinear on request). Points outside a layer or on its
 nodata are dropped, counted by reason and reported in a warning.
+
+The coordinates, abundance and species are kept apart from the table's other columns
+(:class:`SurveyTable`), so no user column can stand in for them, whatever its name.
 """
 
 from __future__ import annotations
 
+import csv
 import hashlib
 import warnings
 from collections.abc import Mapping, Sequence
@@ -23,10 +27,27 @@ from pyproj.exceptions import CRSError
 
 from .errors import DataError, DroppedPointsWarning, InputFileError
 
-__all__ = ["Samples", "read_survey", "sample_layer", "load_samples", "parse_crs"]
+__all__ = ["Samples", "SurveyTable", "read_survey", "sample_layer", "load_samples", "parse_crs"]
 
 VECTOR_SUFFIXES = {".gpkg", ".shp", ".geojson", ".json", ".fgb", ".gml", ".kml"}
 TABLE_SUFFIXES = {".csv", ".txt", ".tsv"}
+# cell texts that spreadsheets and R write for a missing value (read as text, reported as such)
+MISSING_MARKERS = frozenset({"NA", "N/A", "n/a", "#N/A", "#NA", "NULL", "null", "None", "<NA>", "nan", "NaN", "-nan", "-NaN"})
+
+
+@dataclass(frozen=True)
+class SurveyTable:
+    """A survey as read: coordinates, abundance and species (None without a species column),
+    kept apart from ``columns``, the table's other columns under their own names."""
+
+    x: np.ndarray
+    y: np.ndarray
+    abundance: np.ndarray
+    species: np.ndarray | None
+    columns: pd.DataFrame
+
+    def __len__(self) -> int:
+        return int(self.abundance.size)
 
 
 @dataclass(frozen=True)
@@ -66,10 +87,12 @@ def parse_crs(text: Any, *, where: str) -> CRS:
 
 
 def _read_table(path: Path) -> pd.DataFrame:
+    """The table as text (every cell a string, missing-value markers kept as written)."""
     if path.stat().st_size == 0:
         raise InputFileError(f"{path}: the file is empty; export the survey table with a header row and data")
+    sep = "\t" if path.suffix.lower() == ".tsv" else ","
     try:
-        df = pd.read_csv(path, sep="\t" if path.suffix.lower() == ".tsv" else ",")
+        df = pd.read_csv(path, sep=sep, dtype=str, keep_default_na=False)
     except pd.errors.EmptyDataError:
         raise InputFileError(f"{path}: the file is empty; export the survey table with a header row and data") from None
     except (pd.errors.ParserError, UnicodeDecodeError) as exc:
@@ -82,9 +105,32 @@ def _read_table(path: Path) -> pd.DataFrame:
                     f"{path}: columns are separated by {name}, not commas; save the table as "
                     "comma-separated CSV (or use a .tsv suffix for tabs)"
                 )
+    _check_header(path, sep)
     if df.empty:
         raise DataError(f"{path}: the table has a header but no rows; add the survey records")
     return df
+
+
+def _check_header(path: Path, sep: str) -> None:
+    """Refuse repeated column names (a reader would rename or drop one of them silently)."""
+    with path.open(newline="", encoding="utf-8-sig", errors="replace") as fh:
+        header = [h.strip() for h in next(csv.reader(fh, delimiter=sep), [])]
+    seen: dict[str, int] = {}
+    for i, name in enumerate(header, start=1):
+        if name in seen:
+            raise DataError(
+                f"{path}: column '{name}' appears twice in the header (columns {seen[name]} and {i}); give each "
+                "column a distinct name"
+            )
+        seen[name] = i
+
+
+def _shown(value: Any) -> str:
+    """A cell as the user wrote it, for a message."""
+    if value is None or (not isinstance(value, str) and pd.isna(value)) or str(value).strip() == "":
+        return "empty"
+    text = str(value).strip()
+    return f"'{text}' (a missing-value marker)" if text in MISSING_MARKERS else repr(value) if isinstance(value, str) else text
 
 
 def read_survey(
@@ -96,8 +142,8 @@ def read_survey(
     abundance: str = "count",
     species: str | None = None,
     layer: str | None = None,
-) -> tuple[pd.DataFrame, CRS]:
-    """Read the survey as a table with columns ``_x``, ``_y``, ``_abundance`` (+ ``_species``)."""
+) -> tuple[SurveyTable, CRS]:
+    """Read the survey: coordinates, abundance and species apart from the other columns."""
     path = Path(path)
     if not path.is_file():
         raise InputFileError(f"survey file not found: {path}; check survey.path in the config")
@@ -154,16 +200,14 @@ def read_survey(
     bad = ~np.isfinite(ab)
     if bad.any():
         row = int(np.flatnonzero(bad)[0])
-        value = raw.iloc[row]
-        shown = "empty" if pd.isna(value) else repr(value) if isinstance(value, str) else str(value)
         raise DataError(
-            f"{path}: abundance '{abundance}' in row {row + 1} is {shown}, not a finite "
+            f"{path}: abundance '{abundance}' in row {row + 1} is {_shown(raw.iloc[row])}, not a finite "
             "number; abundances must be counts or densities >= 0 (record absences as 0)"
         )
     if np.any(ab < 0):
         row = int(np.flatnonzero(ab < 0)[0])
         raise DataError(f"{path}: abundance '{abundance}' in row {row + 1} is negative ({ab[row]:g}); abundances must be >= 0")
-    out = pd.DataFrame({"_x": xs, "_y": ys, "_abundance": ab})
+    names_out = None
     if species is not None:
         if species not in df.columns:
             raise DataError(
@@ -171,15 +215,14 @@ def read_survey(
                 f"{', '.join(map(str, df.columns))}"
             )
         names = df[species].astype("string").str.strip()
-        empty = names.isna() | (names == "")
+        empty = names.isna() | (names == "") | names.isin(MISSING_MARKERS)
         if empty.any():
             row = int(np.flatnonzero(empty.to_numpy())[0])
-            raise DataError(f"{path}: species column '{species}' is empty in row {row + 1}; name every record's species")
-        out["_species"] = names.to_numpy(dtype=object)
-    for col in df.columns:
-        if col not in (x, y, abundance, species):
-            out[col] = df[col].to_numpy()
-    return out, the_crs
+            raise DataError(f"{path}: species column '{species}' is {_shown(df[species].iloc[row])} in row {row + 1}; "
+                            "name every record's species")
+        names_out = names.to_numpy(dtype=object)
+    others = df[[c for c in df.columns if c not in (x, y, abundance, species)]].reset_index(drop=True)
+    return SurveyTable(xs, ys, ab, names_out, others), the_crs
 
 
 def _open_layer(path: Path):
@@ -285,21 +328,24 @@ def load_samples(cfg: Any, *, species: Sequence[str] | None = None) -> dict[str,
         s.path, x=s.x, y=s.y, crs=s.crs, abundance=s.abundance, species=s.species, layer=s.layer
     )
     n_all = len(table)
+    user = table.columns
     values: dict[str, np.ndarray] = {}
     reasons = {"outside grid": np.zeros(n_all, bool), "nodata": np.zeros(n_all, bool),
                "missing factor value": np.zeros(n_all, bool)}
     cell_key = None
     for f in cfg.factors:
         if f.column is not None:
-            if f.column not in table.columns:
+            if f.column not in user.columns:
+                used = {s.x: "survey.x", s.y: "survey.y", s.abundance: "survey.abundance", s.species: "survey.species"}
+                taken = f" (it is {used[f.column]})" if f.column in used else ""
                 raise DataError(
-                    f"{s.path}: factor '{f.name}' reads column '{f.column}', which the survey table "
-                    f"lacks; columns are {', '.join(c for c in table.columns if not c.startswith('_'))}"
+                    f"{s.path}: factor '{f.name}' reads column '{f.column}'{taken}, which the survey table "
+                    f"lacks as a factor column; columns are {', '.join(map(str, user.columns)) or 'none'}"
                 )
-            v = pd.to_numeric(table[f.column], errors="coerce").to_numpy(dtype=float)
+            v = pd.to_numeric(user[f.column], errors="coerce").to_numpy(dtype=float)
             reasons["missing factor value"] |= ~np.isfinite(v)
         else:
-            v, inside, _ = sample_layer(f.layer, table["_x"].to_numpy(), table["_y"].to_numpy(), crs, method=s.sampling)
+            v, inside, _ = sample_layer(f.layer, table.x, table.y, crs, method=s.sampling)
             reasons["outside grid"] |= ~inside
             reasons["nodata"] |= inside & ~np.isfinite(v)
             if cell_key is None:
@@ -312,20 +358,22 @@ def load_samples(cfg: Any, *, species: Sequence[str] | None = None) -> dict[str,
             "grid or on nodata); check survey.crs, the coordinate columns and the layers' extent"
         )
     frame = pd.DataFrame(values)
-    species_col = table["_species"] if "_species" in table else pd.Series(["species"] * n_all)
+    species_col = pd.Series(table.species if table.species is not None else ["species"] * n_all)
     # every species of the survey, also one whose points were all dropped (it must not vanish)
     wanted = list(species) if species else list(dict.fromkeys(species_col))
     present = set(species_col)
     missing = [sp for sp in wanted if sp not in present]
     if missing:
         raise DataError(f"{s.path}: species {', '.join(missing)} not in the survey; it has {', '.join(sorted(present))}")
+    # the frame the per-species checksums are computed from (their column names are part of the hash)
+    hashed = pd.DataFrame({"_x": table.x, "_y": table.y, "_abundance": table.abundance})
     out: dict[str, Samples] = {}
     for sp in wanted:
         mine = (species_col == sp).to_numpy()
         dropped = {k: int(np.sum(m & mine & ~_earlier(reasons, k))) for k, m in reasons.items()}
         use = mine & keep
         if s.drop_duplicates and cell_key is not None:
-            dup = pd.DataFrame({"v": values[cell_key], "x": table["_x"], "y": table["_y"]}).round(9)
+            dup = pd.DataFrame({"v": values[cell_key], "x": table.x, "y": table.y}).round(9)
             first = ~dup.assign(use=use).loc[use].duplicated(subset=["x", "y"])
             keep_idx = np.flatnonzero(use)[first.to_numpy()]
             dropped["duplicate"] = int(use.sum() - keep_idx.size)
@@ -342,13 +390,13 @@ def load_samples(cfg: Any, *, species: Sequence[str] | None = None) -> dict[str,
         sub = frame.loc[use].reset_index(drop=True)
         out[sp] = Samples(
             species=sp,
-            abundance=table["_abundance"].to_numpy()[use],
+            abundance=table.abundance[use],
             values=sub,
-            x=table["_x"].to_numpy()[use],
-            y=table["_y"].to_numpy()[use],
+            x=table.x[use],
+            y=table.y[use],
             crs=crs.to_string(),
             dropped=dropped,
-            sha256=_hash_frame(table.loc[mine, ["_x", "_y", "_abundance"]]),
+            sha256=_hash_frame(hashed.loc[mine]),
         )
     return out
 

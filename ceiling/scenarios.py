@@ -9,8 +9,9 @@ period). Futures are listed in the config either one by one::
     period = "2041-2070"
     layers = { tmax_warm = "future/a/tmax.tif", precip = { path = "f.nc", variable = "pr" } }
 
-or as a product of names with a path pattern (``{scenario}``, ``{model}``, ``{period}`` and
-``{factor}`` are filled in; ``variable`` names the NetCDF variable and may use them too)::
+or as a product of names with a path pattern (``{scenario}``, ``{climate_model}`` or ``{model}``,
+``{period}`` and ``{factor}`` are filled in, names only; ``{{`` and ``}}`` stand for braces;
+``variable`` names the NetCDF variable and may use them too)::
 
     [[futures]]
     scenarios = ["ssp245", "ssp585"]
@@ -31,25 +32,32 @@ or, for a climate delivered as raw climate-model series, with the series' glob p
     historical = "series/{climate_model}/historical/{variable}_*.nc"
 
 Relative paths are resolved against the config's folder. The projection options
-(``[projection]``) are validated here too.
+(``[projection]``) are validated here too. Scenario, climate-model and period names become
+folders of the run; two names that would share a folder are refused
+(:func:`ceiling.outputs.names.path_parts`).
 """
 
 from __future__ import annotations
 
-import difflib
 import itertools
+import re
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, model_validator
+from pydantic import BaseModel, ConfigDict, Field, model_validator
 
-from .config import RunConfig, _format_error
+from .config import RunConfig, validate_section
 from .errors import ConfigError
+from .outputs.names import path_parts
 
-__all__ = ["LayerRef", "SeriesRef", "Climate", "ProjectionOptions", "climates", "projection_options", "PRESENT"]
+__all__ = ["LayerRef", "SeriesRef", "Climate", "ProjectionOptions", "climates", "projection_options", "check_sections",
+           "fill_placeholders", "option_path", "PLACEHOLDERS", "PRESENT"]
 
 PRESENT = "present"
+# the names a path pattern may use; {model} is the short form of {climate_model}
+PLACEHOLDERS = ("scenario", "climate_model", "model", "period", "factor")
+_TOKEN = re.compile(r"\{\{|\}\}|\{([^{}]*)\}|[{}]")
 
 
 @dataclass(frozen=True)
@@ -139,6 +147,8 @@ class _FutureSpec(_Strict):
         for one, many in (("scenario", "scenarios"), ("model", "models"), ("period", "periods")):
             if (getattr(self, one) is None) == (getattr(self, many) is None):
                 raise ValueError(f"give either '{one}' or '{many}' (a list) for each future")
+            if getattr(self, many) == []:
+                raise ValueError(f"'{many}' is an empty list; name at least one {one}, or leave this future out")
         if (self.series is None) != (self.historical is None):
             raise ValueError("raw series need both 'series' (the scenario run) and 'historical' (the historical run)")
         if self.series and (self.layers or self.pattern):
@@ -179,24 +189,7 @@ class ProjectionOptions(_Strict):
 
 
 def _validate(model: type[BaseModel], data: Any, where: str, source: Any):
-    try:
-        return model.model_validate(data if data is not None else {})
-    except ValidationError as exc:
-        errors = exc.errors()
-        extra = [e for e in errors if e.get("type") == "extra_forbidden"]
-        err = (extra or errors)[0]
-        if extra:  # suggest a key of this section (config's own lookup knows only its sections)
-            loc = tuple(err.get("loc", ()))
-            section = _LayerSpec if "_LayerSpec" in loc else model
-            loc = tuple(p for p in loc if p not in ("_LayerSpec", "str"))
-            allowed = list(section.model_fields)
-            close = difflib.get_close_matches(str(loc[-1]), allowed, n=1, cutoff=0.5)
-            hint = f"did you mean '{close[0]}'?" if close else f"valid keys: {', '.join(allowed)}"
-            dotted = ".".join(str(p) for p in (where, *loc))
-            raise ConfigError(f"{source or 'config'}: unknown key '{dotted}'; {hint}") from None
-        err = {**err, "loc": (where, *err.get("loc", ()))}
-        msg = _format_error(err, source or "config")
-        raise ConfigError(msg) from None
+    return validate_section(model, data, where, source)
 
 
 def projection_options(cfg: RunConfig) -> ProjectionOptions:
@@ -207,32 +200,78 @@ def _base(cfg: RunConfig) -> Path:
     return Path(cfg.source).resolve().parent if cfg.source else Path.cwd()
 
 
-def _ref(spec: str | _LayerSpec, base: Path, fmt: dict[str, str], units: str | None) -> LayerRef:
+def option_path(cfg: RunConfig, value: str | None) -> Path | None:
+    """A path given in a free section (``projection.template``, ``projection.mask``), resolved
+    against the config's folder like every other path of the config."""
+    if not value:
+        return None
+    p = Path(value).expanduser()
+    return p if p.is_absolute() else _base(cfg) / p
+
+
+def fill_placeholders(text: str, values: dict[str, str], *, where: str) -> str:
+    """``text`` with ``{name}`` replaced by ``values[name]`` for the names of :data:`PLACEHOLDERS`
+    (``{{`` and ``}}`` are literal braces). Anything else in braces, or a lone brace, is refused:
+    placeholders are names only (no attributes, indices or format specifications)."""
+    def one(m: re.Match) -> str:
+        tok = m.group(0)
+        if tok in ("{{", "}}"):
+            return tok[0]
+        name = m.group(1)
+        if name is None:
+            raise ConfigError(f"{where}: unmatched '{tok}' in '{text}'; close the placeholder or write '{tok * 2}' for a "
+                              "literal brace")
+        if name not in values:
+            raise ConfigError(f"{where}: unknown placeholder '{{{name}}}' in '{text}'; use "
+                              + ", ".join(f"{{{n}}}" for n in PLACEHOLDERS if n in values))
+        return values[name]
+
+    return _TOKEN.sub(one, text)
+
+
+def _ref(spec: str | _LayerSpec, base: Path, fmt: dict[str, str], units: str | None, where: str) -> LayerRef:
     if isinstance(spec, str):
         path, variable, u = spec, None, None
     else:
         path, variable, u = spec.path, spec.variable, spec.units
-    p = Path(path.format(**fmt)).expanduser()
+    p = Path(fill_placeholders(path, fmt, where=where)).expanduser()
     return LayerRef(
         path=p if p.is_absolute() else base / p,
-        variable=variable.format(**fmt) if variable else None,
+        variable=fill_placeholders(variable, fmt, where=f"{where} (variable)") if variable else None,
         units=u or units,
     )
 
 
-class _KeepUnknown(dict):
-    def __missing__(self, key: str) -> str:
-        return "{" + key + "}"
+def _series_ref(spec: _FutureSpec, base: Path, fmt: dict[str, str], where: str) -> SeriesRef:
+    """The series' glob patterns with the climate's names filled in; ``{variable}`` stays for the
+    derive stage (:func:`ceiling.derive.series.series_files`)."""
+    values = {**fmt, "variable": "{variable}"}
 
-
-def _series_ref(spec: _FutureSpec, base: Path, sc: str, mo: str, pe: str) -> SeriesRef:
-    fmt = _KeepUnknown(scenario=sc, model=mo, climate_model=mo, period=pe)
-
-    def one(pattern: str) -> str:
-        p = Path(pattern.format_map(fmt)).expanduser()
+    def one(pattern: str, what: str) -> str:
+        p = Path(fill_placeholders(pattern, values, where=f"{where}.{what}")).expanduser()
         return str(p if p.is_absolute() else base / p)
 
-    return SeriesRef(one(spec.series or ""), one(spec.historical or ""))
+    return SeriesRef(one(spec.series or "", "series"), one(spec.historical or "", "historical"))
+
+
+def check_sections(cfg: RunConfig) -> None:
+    """Validate ``[present]``, every ``[[futures]]`` (keys, values and path placeholders) and
+    ``[projection]`` without opening anything: a command that does not project (``ceiling fit``)
+    still refuses a typo."""
+    dummy = dict.fromkeys(PLACEHOLDERS, "x")
+    pres = _validate(_PresentSpec, cfg.present, "present", cfg.source)
+    for name, spec in pres.layers.items():
+        _ref(spec, Path("."), dummy, None, f"{cfg.source}: present.layers.{name}")
+    for i, raw in enumerate(cfg.futures or []):
+        spec = _validate(_FutureSpec, raw, f"futures.{i}", cfg.source)
+        for name, layer in spec.layers.items():
+            _ref(layer, Path("."), dummy, None, f"{cfg.source}: futures.{i}.layers.{name}")
+        if spec.pattern:
+            _ref(_LayerSpec(path=spec.pattern, variable=spec.variable), Path("."), dummy, None,
+                 f"{cfg.source}: futures.{i}.pattern")
+        if spec.series:
+            _series_ref(spec, Path("."), dummy, f"{cfg.source}: futures.{i}")
+    projection_options(cfg)
 
 
 def climates(cfg: RunConfig) -> list[Climate]:
@@ -246,7 +285,8 @@ def climates(cfg: RunConfig) -> list[Climate]:
     layers = {}
     for f in cfg.factors:
         if f.name in pres.layers:
-            layers[f.name] = _ref(pres.layers[f.name], base, {"factor": f.name}, pres.units.get(f.name) or f.units)
+            layers[f.name] = _ref(pres.layers[f.name], base, {"factor": f.name}, pres.units.get(f.name) or f.units,
+                                  f"{cfg.source}: present.layers.{f.name}")
         elif f.layer is not None:
             layers[f.name] = LayerRef(Path(f.layer), None, f.units)
         else:
@@ -259,7 +299,9 @@ def climates(cfg: RunConfig) -> list[Climate]:
     for i, raw in enumerate(cfg.futures or []):
         spec = _validate(_FutureSpec, raw, f"futures.{i}", cfg.source)
         for sc, mo, pe in itertools.product(
-            spec.scenarios or [spec.scenario], spec.models or [spec.model], spec.periods or [spec.period]
+            spec.scenarios if spec.scenarios is not None else [spec.scenario],
+            spec.models if spec.models is not None else [spec.model],
+            spec.periods if spec.periods is not None else [spec.period],
         ):
             key = (str(sc), str(mo), str(pe))
             if key in seen:
@@ -270,16 +312,18 @@ def climates(cfg: RunConfig) -> list[Climate]:
                 raise ConfigError(f"{cfg.source}: 'ensemble' is reserved for the combined models; rename the climate model in futures.{i}")
             seen.add(key)
             if spec.series:
-                out.append(Climate(str(sc), str(mo), str(pe), {}, _series_ref(spec, base, sc, mo, pe)))
+                names_of = {"scenario": str(sc), "climate_model": str(mo), "model": str(mo), "period": str(pe)}
+                out.append(Climate(str(sc), str(mo), str(pe), {}, _series_ref(spec, base, names_of, f"{cfg.source}: futures.{i}")))
                 continue
             fl = {}
             for name in names:
-                fmt = {"scenario": sc, "model": mo, "period": pe, "factor": name}
+                fmt = {"scenario": str(sc), "climate_model": str(mo), "model": str(mo), "period": str(pe), "factor": name}
                 u = spec.units.get(name)
                 if name in spec.layers:
-                    fl[name] = _ref(spec.layers[name], base, fmt, u)
+                    fl[name] = _ref(spec.layers[name], base, fmt, u, f"{cfg.source}: futures.{i}.layers.{name}")
                 elif spec.pattern:
-                    fl[name] = _ref(_LayerSpec(path=spec.pattern, variable=spec.variable), base, fmt, u)
+                    fl[name] = _ref(_LayerSpec(path=spec.pattern, variable=spec.variable), base, fmt, u,
+                                    f"{cfg.source}: futures.{i}.pattern")
                 else:
                     raise ConfigError(
                         f"{cfg.source}: future {sc} / {mo} / {pe} has no layer for factor '{name}'; "
@@ -289,4 +333,11 @@ def climates(cfg: RunConfig) -> list[Climate]:
             if extra:
                 raise ConfigError(f"{cfg.source}: futures.{i}.layers names unknown factor(s) {sorted(extra)}; factors are {names}")
             out.append(Climate(str(sc), str(mo), str(pe), fl))
+    # each name becomes a folder: two that would share one are refused (the run's records and
+    # files are keyed by the full names, but one folder cannot hold two climates)
+    futures = out[1:]
+    where = f"{cfg.source or 'config'}: [[futures]]"
+    for kind, names in (("scenario", [c.scenario for c in futures]), ("climate model", [c.model for c in futures]),
+                        ("period", [c.period for c in futures])):
+        path_parts(kind, names, where=where, error=ConfigError)
     return out

@@ -145,10 +145,12 @@ def test_negative_abundance(tiny):
     refuse(tiny, tiny.config(), "survey.csv", "row 3", "negative", ">= 0")
 
 
-@pytest.mark.parametrize("value", ["", "NaN"], ids=["blank", "NaN"])
-def test_missing_abundance_value(tiny, value):
+@pytest.mark.parametrize("value,shown", [("", "row 1 is empty"), ("NaN", "row 1 is 'NaN' (a missing-value marker)")],
+                         ids=["blank", "NaN"])
+def test_missing_abundance_value(tiny, value, shown):
+    """A blank cell is called empty; a missing-value marker is quoted as written."""
     _edit_counts(tiny, 0, value)
-    line = refuse(tiny, tiny.config(), "survey.csv", "row 1 is empty", "not a finite number", "record absences as 0")
+    line = refuse(tiny, tiny.config(), "survey.csv", shown, "not a finite number", "record absences as 0")
     assert "np.float64" not in line
 
 
@@ -228,10 +230,16 @@ def test_output_folder_exists_and_is_not_empty(tiny):
     assert "not empty" in lines[0] and "--overwrite" in lines[0] and str(tiny.out) in lines[0]
     assert "Traceback" not in res.stderr
     assert sorted(p.name for p in tiny.out.iterdir()) == ["notes.txt"] and keep.read_text() == "mine"
-    # ...and with --overwrite it is replaced by a complete fit
+    # --overwrite does not replace a folder of the user's own files ...
+    res = _cli(["fit", tiny.config(), "--out", tiny.out, "--overwrite"])
+    assert res.exit_code == 2 and "did not write" in res.stderr and keep.read_text() == "mine"
+    # ... only an earlier output of ceiling, by a complete fit
+    keep.unlink()
+    assert _cli(["fit", tiny.config(), "--out", tiny.out]).exit_code == 0
+    (tiny.out / MODEL_FILE).write_text((tiny.out / MODEL_FILE).read_text().replace('"tau": 0.9,', '"tau": 0.8,', 1))
     res = _cli(["fit", tiny.config(), "--out", tiny.out, "--overwrite"])
     assert res.exit_code == 0, res.output
-    assert (tiny.out / MODEL_FILE).is_file() and not keep.exists()
+    assert '"tau": 0.9,' in (tiny.out / MODEL_FILE).read_text()
 
 
 def test_output_folder_inside_the_inputs_is_refused(tiny):

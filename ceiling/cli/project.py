@@ -16,9 +16,11 @@ from .options import (
 )
 
 compute_opts = [
-    click.option("--workers", type=int, default=None, help="Start a local dask.distributed cluster with N worker processes (loopback)."),
+    click.option("--workers", type=click.IntRange(min=1), default=None,
+                 help="Start a local dask.distributed cluster with N worker processes (loopback; N >= 1)."),
     click.option("--scheduler", "address", default=None, help="Join an existing dask.distributed cluster at ADDRESS."),
-    click.option("--threads", type=int, default=None, help="Threads for the default threaded scheduler (default: all cores)."),
+    click.option("--threads", type=click.IntRange(min=1), default=None,
+                 help="Threads for the default threaded scheduler and figure processes (N >= 1; default: all cores)."),
 ]
 
 

@@ -28,6 +28,7 @@ from rasterio.windows import Window
 from ..config import RunConfig
 from ..grids import BlockReader, GridSpec, layer_reader, template_grid
 from ..outputs.atomic import tmp_name
+from ..outputs.names import DERIVED_DIR, safe_part
 from ..outputs.geotiff import FLOAT_NODATA
 from ..scenarios import PRESENT, Climate, LayerRef, climates
 from .baseline import Baseline, baseline_refs, open_baseline
@@ -42,14 +43,15 @@ from .settings import DeriveSection, base_folder, derive_section, historical_yea
 __all__ = ["DERIVED_FOLDER", "DerivePlan", "DeriveResult", "plan_derive", "write_layers", "derived_layer_path",
            "derive_to_folder", "derive_for_run", "derive_inputs", "method_record"]
 
-DERIVED_FOLDER = "derived"  # inside a run's output folder
+DERIVED_FOLDER = DERIVED_DIR  # inside a run's output folder
 
 
 def derived_layer_path(folder: Path, climate: Climate, factor: str) -> Path:
     """Where a derived factor layer goes: the layout a ``[[futures]]`` pattern reads."""
     if climate.is_present:
-        return Path(folder) / PRESENT / f"{factor}.tif"
-    return Path(folder) / climate.scenario / climate.model / climate.period / f"{factor}.tif"
+        return Path(folder) / PRESENT / f"{safe_part(factor)}.tif"
+    parts = (safe_part(climate.scenario), safe_part(climate.model), safe_part(climate.period))
+    return Path(folder).joinpath(*parts) / f"{safe_part(factor)}.tif"
 
 
 @dataclass(frozen=True)
