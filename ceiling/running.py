@@ -253,7 +253,7 @@ def run_projection(
     trans: list[dict] = []
     # open every climate's layers first, so that a bad layer is refused before any computing
     opened = [climate_readers(c, grid, used, units, opts) for c in cl]
-    from .novelty import check_reference
+    from .mess import check_reference
     from .outputs.folder import check_free_space
 
     for m in ms:
@@ -376,7 +376,7 @@ def _netcdf(stage: Path, grid: GridSpec, ms: list[CeilingModel], cl: list[Climat
 
     def spec(j: int | None) -> Callable:
         def one(i: int, layer: str):
-            lut = switch_luts[i] if layer == "switch" else luts[i] if layer in ("limiting", "novel_factor") else None
+            lut = switch_luts[i] if layer == "switch" else luts[i] if layer in ("limiting", "least_similar") else None
             if j is None:
                 return f"{layer}_present", (i,), lut
             return layer, (i, j), lut

@@ -51,7 +51,7 @@ CAUTIONS = (
     "minimum over the factors' upper boundaries). It is not a forecast of abundance: dispersal, land use, "
     "habitat, competitors, disease and chance keep real abundance below the ceiling in most places.",
     "Cells whose climate lies outside the range sampled by the survey (novel climate, MESS below 0) are "
-    "extrapolations; they are hatched on the novelty maps, and their share is given in the tables.",
+    "extrapolations; they are hatched on the similarity maps, and their share is given in the tables.",
     "Climate models disagree. The ensemble maps hatch the cells where too few models agree on the sign of "
     "the change, and the ensemble table gives the agreement; a change that only one model shows is weak evidence.",
     "The results need review by experts who know the species and the region before any use.",
@@ -387,7 +387,7 @@ def _maps_section(root: Path, info: Any) -> list[dict[str, Any]]:
                                  "uncertainty": [], "climates": []}
         if present is not None:
             block["present"] = _figure(root, maps.climate_sheet_name(sp, present), maps.climate_title(sp, present),
-                                       f"Maps of the present ceiling, limiting factor and novelty for {sp}")
+                                       f"Maps of the present ceiling, limiting factor and climate similarity for {sp}")
         models = list(dict.fromkeys(k[1] for k in info.climates[sp] if k[0] != "present"))
         for model in [m for m in models if m != ENSEMBLE] + ([ENSEMBLE] if ENSEMBLE in models else []):
             for layer in ("change", "zone"):
