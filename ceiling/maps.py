@@ -81,7 +81,7 @@ __all__ = [
     "community_sheet", "save_figure", "make_figures", "figure_tasks", "legend_labels", "climate_title",
     "climate_sheet_name", "uncertainty_sheet_name", "comparison_sheet_name", "limiting_figure_name",
     "community_figure_name", "PRESENT_PANELS", "FUTURE_PANELS", "ENSEMBLE_PANELS", "UNCERTAINTY_PANELS",
-    "COMPARED_PROBABILITIES", "TITLES", "NOVEL_HATCH_LABEL", "LOW_AGREEMENT_LABEL",
+    "COMPARED_PROBABILITIES", "TITLES", "NOVEL_HATCH_LABEL", "LOW_AGREEMENT_LABEL", "COMMUNITY_SCALES",
 ]
 
 DPI = 200
@@ -955,6 +955,17 @@ COMMUNITY_TITLES = {
     "n_release": "Species in release",
     "n_constraint": "Species in constraint",
 }
+# the colour-bar label of each community panel, by what the layer holds (not by how it is stored:
+# richness_change is float32, so that the loss of a species can be negative)
+COMMUNITY_SCALES = {
+    "total_ceiling": "abundance summed over species (survey units)",
+    "total_change": "change of the summed abundance (survey units)",
+    "richness": "number of species",
+    "richness_change": "change in the number of species",
+    "n_release": "number of species",
+    "n_constraint": "number of species",
+}
+COMMUNITY_COUNTS = ("richness", "richness_change", "n_release", "n_constraint")  # whole numbers of species
 
 
 def community_climates(root: str | Path) -> list[Path]:
@@ -988,7 +999,8 @@ def _community_panel(path: Path, limits: dict[str, float]) -> _Panel:
     layer = MapLayer(data, layer.extent, layer.crs, layer.full_shape)
     top = limits.get(name, 0.0)
     change = "change" in name
-    if integer and top <= 40:  # counts of species: one colour per whole number
+    counts = integer or name in COMMUNITY_COUNTS
+    if counts and top <= 40:  # counts of species: one colour per whole number
         n = max(1, int(math.ceil(top)))
         edges = np.arange(-n - 0.5, n + 1.5) if change else np.arange(-0.5, n + 1.5)
         cmap = CMAP_CHANGE if change else CMAP_CEILING
@@ -997,7 +1009,7 @@ def _community_panel(path: Path, limits: dict[str, float]) -> _Panel:
         cmap, norm = CMAP_CHANGE, mcolors.Normalize(-_nice_up(top), _nice_up(top))
     else:
         cmap, norm = CMAP_CEILING, mcolors.Normalize(0.0, _nice_up(top))
-    scale = "species" if integer else "abundance summed over species (survey units)"
+    scale = COMMUNITY_SCALES.get(name, "number of species" if integer else "value of the layer")
     return _Panel(name, layer, None, title=COMMUNITY_TITLES.get(name, name.replace("_", " ")), cmap=cmap, norm=norm,
                   scale=scale)
 
