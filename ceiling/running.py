@@ -488,7 +488,7 @@ def _project_to_folder(cfg: RunConfig, out: Path, cl: list[Climate], inputs: lis
         from .report import build_report
         t_report = time.perf_counter()
         n_figures = len(make_figures(stage, workers=threads))  # --threads caps the figure processes too
-        build_report(stage, config=cfg.source, inputs=inputs)
+        build_report(stage, config=cfg.source, inputs=inputs, folder=out)  # named as given, not the staging folder
         run.timings["figures_and_report"] = time.perf_counter() - t_report
         if progress:
             progress(f"wrote {n_figures} figures and report.html in {run.timings['figures_and_report']:.1f} s")

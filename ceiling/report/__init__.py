@@ -7,8 +7,10 @@ renders ``template.html.j2`` with Jinja2 (autoescaped). Every image is embedded 
 loads nothing else: no scripts, no external style sheets or fonts, and a content security
 policy that forbids any other source.
 
-Sections: what was run; the model; the maps and comparison sheets; the summary tables; the
-cautions; provenance (checksums).
+Sections, results first: what the run found (ceiling/report/results.py); the maps and
+comparison sheets; the summary tables; the model and its diagnostics; the cautions; then, folded
+(``<details>``), what was run (config, climates, inputs, versions) and provenance (checksums). A
+table of contents stays in view beside the page (CSS ``position: sticky``, no script).
 """
 
 from __future__ import annotations
@@ -26,7 +28,6 @@ from typing import Any
 import pandas as pd
 
 from .. import __version__
-from ..categories import ENSEMBLE_ZONES, ZONES
 from ..errors import InputFileError
 from ..outputs.atomic import atomic_write_text, sha256_file
 from ..outputs.names import (
@@ -35,8 +36,12 @@ from ..outputs.names import (
     MANIFEST_FILE,
     MODEL_FILE,
     SUMMARY_FILE,
+    TRANSITIONS_FILE,
     fit_panel_name,
 )
+from .formatting import format_km2, format_percent, format_size, format_value, missing
+from .results import ZONES_FILE, RunTables, results_section
+from .tables import ensemble_table, future_table, generic_table, present_table
 
 __all__ = ["REPORT_FILE", "build_report", "report_context", "render_report", "format_km2", "format_percent",
            "format_value", "CAUTIONS"]
@@ -58,49 +63,6 @@ CAUTIONS = (
     "Local regulations and the guidance of the responsible agencies decide how such results may be used; "
     "this report does not replace them.",
 )
-
-
-# --- formatting (also used by the tests to know what the page shows) --------------------------------------
-
-def _missing(v: Any) -> bool:
-    """None, a blank string or NaN (a table's empty cell)."""
-    if v is None:
-        return True
-    if isinstance(v, str):
-        return not v.strip()
-    try:
-        return math.isnan(float(v))
-    except (TypeError, ValueError):
-        return False
-
-
-def format_km2(v: Any) -> str:
-    """Area in km2: whole km2 from 100 up, one decimal below (``12,345 km²``, ``3.4 km²``)."""
-    if _missing(v):
-        return "–"
-    x = float(v)
-    return f"{x:,.0f} km²" if abs(x) >= 100 else f"{x:,.1f} km²"
-
-
-def format_percent(share: Any) -> str:
-    """A share 0..1 as a percentage with one decimal (``12.3 %``)."""
-    if _missing(share):
-        return "–"
-    return f"{100.0 * float(share):.1f} %"
-
-
-def format_value(v: Any, digits: int = 2) -> str:
-    if _missing(v):
-        return "–"
-    return f"{float(v):,.{digits}f}"
-
-
-def _size(n: int) -> str:
-    for unit in ("bytes", "kB", "MB", "GB"):
-        if n < 1000 or unit == "GB":
-            return f"{n:,.0f} {unit}" if unit == "bytes" else f"{n:,.1f} {unit}"
-        n /= 1000.0
-    return f"{n} bytes"
 
 
 # --- images -----------------------------------------------------------------------------------------------
@@ -221,110 +183,6 @@ NOVEL_RULES = {
 }
 
 
-# --- tables ----------------------------------------------------------------------------------------------------
-
-def _cell(col: str, text: str, *, num: bool = True) -> dict[str, Any]:
-    return {"col": col, "text": text, "num": num}
-
-
-def _row_key(r: Any) -> dict[str, str]:
-    return {"species": str(r["species"]), "scenario": str(r["scenario"]),
-            "model": "" if _missing(r.get("model")) else str(r["model"]), "period": str(r["period"])}
-
-
-def _present_table(summary: pd.DataFrame, factors: dict[str, list[str]]) -> dict[str, Any] | None:
-    rows = summary[summary["scenario"] == "present"]
-    if rows.empty:
-        return None
-    allf = list(dict.fromkeys(f for fs in factors.values() for f in fs))
-    head = ["species", "period", "area", "mean ceiling", "novel climate", "novel share",
-            *[f"limited by {f}" for f in allf]]
-    out = []
-    for _, r in rows.iterrows():
-        cells = [_cell("species", str(r["species"]), num=False), _cell("period", str(r["period"]), num=False),
-                 _cell("area_km2", format_km2(r.get("area_km2"))),
-                 _cell("mean_ceiling_now", format_value(r.get("mean_ceiling_now"))),
-                 _cell("area_km2_novel", format_km2(r.get("area_km2_novel"))),
-                 _cell("share_novel", format_percent(r.get("share_novel")))]
-        cells += [_cell(f"area_km2_limited_now_{f}", format_km2(r.get(f"area_km2_limited_now_{f}"))) for f in allf]
-        out.append({"key": _row_key(r), "cells": cells})
-    return {"id": "table-present", "caption": "Present climate: area, mean ceiling (survey abundance units), "
-            "novel climate and the area limited by each factor", "head": head, "rows": out}
-
-
-def _future_table(summary: pd.DataFrame) -> dict[str, Any] | None:
-    rows = summary[(summary["scenario"] != "present") & (summary["model"] != ENSEMBLE)]
-    if rows.empty:
-        return None
-    head = ["species", "scenario", "climate model", "period", *[z.name for z in ZONES], "novel share",
-            "mean change", "median change"]
-    out = []
-    for _, r in rows.iterrows():
-        area = r.get("area_km2")
-        share = r.get("share_novel")
-        if _missing(share) and not _missing(r.get("area_km2_novel")) and area:
-            share = float(r["area_km2_novel"]) / float(area)
-        cells = [_cell("species", str(r["species"]), num=False), _cell("scenario", str(r["scenario"]), num=False),
-                 _cell("model", str(r["model"]), num=False), _cell("period", str(r["period"]), num=False)]
-        cells += [_cell(f"area_km2_{z.name}", format_km2(r.get(f"area_km2_{z.name}"))) for z in ZONES]
-        cells += [_cell("share_novel", format_percent(share)),
-                  _cell("mean_change", format_value(r.get("mean_change"))),
-                  _cell("median_change", format_value(r.get("median_change")))]
-        out.append({"key": _row_key(r), "cells": cells})
-    return {"id": "table-futures", "caption": "Each scenario, climate model and period: area of each zone class, "
-            "share of novel climate, and the area-weighted mean and median change of the ceiling "
-            "(survey abundance units)", "head": head, "rows": out}
-
-
-def _ensemble_table(summary: pd.DataFrame) -> dict[str, Any] | None:
-    rows = summary[summary["model"] == ENSEMBLE]
-    if rows.empty:
-        return None
-    head = ["species", "scenario", "period", "climate models", *[z.name for z in ENSEMBLE_ZONES],
-            "robust area", "robust share", "mean agreement"]
-    out = []
-    for _, r in rows.iterrows():
-        area = r.get("area_km2")
-        robust = r.get("area_km2_robust")
-        share = float(robust) / float(area) if not _missing(robust) and not _missing(area) and float(area) else float("nan")
-        n = r.get("n_models")
-        cells = [_cell("species", str(r["species"]), num=False), _cell("scenario", str(r["scenario"]), num=False),
-                 _cell("period", str(r["period"]), num=False),
-                 _cell("n_models", "–" if _missing(n) else f"{int(float(n))}")]
-        cells += [_cell(f"area_km2_{z.name}", format_km2(r.get(f"area_km2_{z.name}"))) for z in ENSEMBLE_ZONES]
-        cells += [_cell("area_km2_robust", format_km2(robust)), _cell("share_robust", format_percent(share)),
-                  _cell("mean_agreement", format_percent(r.get("mean_agreement")))]
-        out.append({"key": _row_key(r), "cells": cells})
-    return {"id": "table-ensemble", "caption": "Ensembles: area of each zone class, area where enough climate models "
-            "agree on the sign of the change (robust), and the area-weighted mean agreement", "head": head, "rows": out}
-
-
-def _generic_table(df: pd.DataFrame, table_id: str, caption: str) -> dict[str, Any]:
-    """Any table (zones.csv, community tables): numbers formatted by their column names."""
-    out = []
-    for _, r in df.iterrows():
-        cells = []
-        for c in df.columns:
-            v = r[c]
-            name = str(c).lower()
-            if isinstance(v, str):
-                cells.append(_cell(str(c), v, num=False))
-            elif _missing(v):
-                cells.append(_cell(str(c), "–"))
-            elif "km2" in name:
-                cells.append(_cell(str(c), format_km2(v)))
-            elif "share" in name or name.startswith("p_") or "fraction" in name:
-                cells.append(_cell(str(c), format_percent(v)))
-            elif "pct" in name or "percent" in name:
-                cells.append(_cell(str(c), "–" if _missing(v) else f"{float(v):.1f} %"))
-            elif isinstance(v, int | bool) or (isinstance(v, float) and v.is_integer() and abs(v) < 1e15):
-                cells.append(_cell(str(c), f"{int(v):,}" if not isinstance(v, bool) else str(v)))
-            else:
-                cells.append(_cell(str(c), format_value(v)))
-        out.append({"key": {}, "cells": cells})
-    return {"id": table_id, "caption": caption, "head": [str(c) for c in df.columns], "rows": out}
-
-
 # --- model section ----------------------------------------------------------------------------------------------
 
 LIMITING = "acts as a limiting factor"  # the verdict of diagnostics.csv for a factor that acts as a limit
@@ -334,7 +192,7 @@ def _in_minimum(r: Any) -> bool:
     v = r.get("in_minimum", True)
     if isinstance(v, str):
         return v.strip().lower() not in ("false", "0", "no")
-    return True if _missing(v) else bool(v)
+    return True if missing(v) else bool(v)
 
 
 def _model_section(root: Path, diag: pd.DataFrame, model_doc: dict[str, Any]) -> list[dict[str, Any]]:
@@ -354,10 +212,10 @@ def _model_section(root: Path, diag: pd.DataFrame, model_doc: dict[str, Any]) ->
                 "peak": format_value(r.get("peak_ceiling")),
                 "share_above": f"{format_percent(r.get('share_above'))} (expected {format_percent(r.get('expected_share_above'))})",
                 "pseudo_r1": format_value(r.get("pseudo_r1"), 3),
-                "wedge_p": "–" if _missing(r.get("wedge_p")) else f"{float(r['wedge_p']):.3g}",
+                "wedge_p": "–" if missing(r.get("wedge_p")) else f"{float(r['wedge_p']):.3g}",
                 "verdict": r.get("verdict", ""),
                 "in_minimum": _in_minimum(r),
-                "screened_reason": "" if _missing(r.get("screened_reason")) else str(r.get("screened_reason")),
+                "screened_reason": "" if missing(r.get("screened_reason")) else str(r.get("screened_reason")),
                 "limiting_share": format_percent(r.get("limiting_share")) if "limiting_share" in r else "",
             })
         limits = [r["factor"] for r in rows if r["verdict"] == LIMITING]
@@ -377,14 +235,33 @@ def _model_section(root: Path, diag: pd.DataFrame, model_doc: dict[str, Any]) ->
 
 # --- maps section ------------------------------------------------------------------------------------------------
 
-def _maps_section(root: Path, info: Any) -> list[dict[str, Any]]:
+def _overview_figures(root: Path, info: Any) -> dict[str, dict[str, Any] | None]:
+    """Per species, the figure that opens its results: the ensemble's zone sheet (scenarios
+    across, periods down), or the first climate model's when the run has no ensemble."""
+    from .. import maps
+
+    out: dict[str, dict[str, Any] | None] = {}
+    for sp in info.species:
+        models = list(dict.fromkeys(k[1] for k in info.climates[sp] if k[0] != "present"))
+        model = ENSEMBLE if ENSEMBLE in models else (models[0] if models else None)
+        who = "ensemble of the climate models (release and constraint only where they agree)" if model == ENSEMBLE \
+            else f"climate model {model}"
+        out[sp] = None if model is None else _figure(
+            root, maps.comparison_sheet_name(sp, model, "zone"), f"{sp}: zone of change, {who}",
+            f"Zone of change of {sp} for each scenario (across) and period (down), {who}")
+    return out
+
+
+def _maps_section(root: Path, info: Any, shown: set[str] = frozenset()) -> list[dict[str, Any]]:
+    """The map sheets of each species; ``shown`` lists the figure files already in the results
+    (referred to, not embedded twice)."""
     from .. import maps
 
     out = []
     for sp in info.species:
         present = info.present(sp)
         block: dict[str, Any] = {"name": sp, "present": None, "comparisons": [], "ensembles": [], "limiting": [],
-                                 "uncertainty": [], "climates": []}
+                                 "uncertainty": [], "climates": [], "shown_above": []}
         if present is not None:
             block["present"] = _figure(root, maps.climate_sheet_name(sp, present), maps.climate_title(sp, present),
                                        f"Maps of the present ceiling, limiting factor and climate similarity for {sp}")
@@ -395,7 +272,9 @@ def _maps_section(root: Path, info: Any) -> list[dict[str, Any]]:
                 what = "change of the ceiling" if layer == "change" else "zone of change"
                 f = _figure(root, maps.comparison_sheet_name(sp, model, layer), f"{sp}: {what}, {who}",
                             f"{what} for each scenario (across) and period (down), {who}")
-                if f:
+                if f and f["file"] in shown:
+                    block["shown_above"].append(f["title"])
+                elif f:
                     block["comparisons"].append(f)
         for key in info.ensembles(sp):
             f = _figure(root, maps.climate_sheet_name(sp, key), maps.climate_title(sp, key))
@@ -439,7 +318,7 @@ def _community(root: Path) -> dict[str, Any] | None:
         if f:
             figs.append(f)
     csvs = sorted(d.rglob("*.csv")) + ([root / "community.csv"] if (root / "community.csv").is_file() else [])
-    tables = [_generic_table(_read_csv(c).head(MAX_TABLE_ROWS), f"table-community-{i}", c.relative_to(root).as_posix())
+    tables = [generic_table(_read_csv(c).head(MAX_TABLE_ROWS), f"table-community-{i}", c.relative_to(root).as_posix())
               for i, c in enumerate(csvs)]
     return {"figures": figs, "tables": [t for t in tables if t["rows"]]}
 
@@ -459,7 +338,7 @@ def _provenance(root: Path, manifest: dict[str, Any] | None, report_path: Path) 
                 status = "missing"
             else:
                 status = "matches" if sha256_file(p) == e.get("sha256") else "changed since the manifest"
-            entries.append({"path": e["path"], "size": _size(int(e.get("size", 0))), "sha256": e.get("sha256", ""),
+            entries.append({"path": e["path"], "size": format_size(int(e.get("size", 0))), "sha256": e.get("sha256", ""),
                             "status": status})
         source = f"{MANIFEST_FILE}, checked against the files when this report was built"
     else:
@@ -467,7 +346,7 @@ def _provenance(root: Path, manifest: dict[str, Any] | None, report_path: Path) 
             rel = p.relative_to(root)
             if p.resolve() == report_path.resolve() or rel.name.startswith("."):
                 continue
-            entries.append({"path": rel.as_posix(), "size": _size(p.stat().st_size), "sha256": sha256_file(p),
+            entries.append({"path": rel.as_posix(), "size": format_size(p.stat().st_size), "sha256": sha256_file(p),
                             "status": "computed now"})
         source = (f"computed from the files when this report was built; {MANIFEST_FILE} (written after the report) "
                   "lists every input and output, this report included")
@@ -476,7 +355,7 @@ def _provenance(root: Path, manifest: dict[str, Any] | None, report_path: Path) 
 
 def _inputs(manifest: dict[str, Any] | None, inputs: Iterable[Path]) -> list[dict[str, str]]:
     if manifest is not None:
-        return [{"path": e["path"], "size": _size(int(e.get("size", 0))), "sha256": e.get("sha256", "")}
+        return [{"path": e["path"], "size": format_size(int(e.get("size", 0))), "sha256": e.get("sha256", "")}
                 for e in manifest.get("inputs", [])]
     out, seen = [], set()
     for p in inputs:
@@ -485,14 +364,23 @@ def _inputs(manifest: dict[str, Any] | None, inputs: Iterable[Path]) -> list[dic
         if key in seen or not p.is_file():
             continue
         seen.add(key)
-        out.append({"path": str(p), "size": _size(p.stat().st_size), "sha256": ""})
+        out.append({"path": str(p), "size": format_size(p.stat().st_size), "sha256": ""})
     return out
 
 
 # --- the whole report ----------------------------------------------------------------------------------------------
 
-def report_context(run_dir: str | Path, *, config: Path | None = None, inputs: Iterable[Path] = ()) -> dict[str, Any]:
-    """Everything the template shows, as plain data."""
+def _zones_table(zdf: pd.DataFrame) -> dict[str, Any] | None:
+    shown = zdf.head(MAX_TABLE_ROWS)
+    caption = f"{ZONES_FILE}: every zone, species and climate" if len(zdf) <= MAX_TABLE_ROWS else \
+        f"{ZONES_FILE}: the first {MAX_TABLE_ROWS} of {len(zdf):,} rows (the whole table is in {ZONES_FILE})"
+    return generic_table(shown, "table-zones", caption) if len(shown) else None
+
+
+def report_context(run_dir: str | Path, *, config: Path | None = None, inputs: Iterable[Path] = (),
+                   folder: str | Path | None = None) -> dict[str, Any]:
+    """Everything the template shows, as plain data. ``folder`` is the run folder as the user
+    named it (the report may be built in a staging folder of another name)."""
     from ..maps import run_info
     from ..outputs.manifest import package_versions
 
@@ -509,15 +397,12 @@ def report_context(run_dir: str | Path, *, config: Path | None = None, inputs: I
     climates = [{"scenario": k[0], "model": k[1], "period": k[2]}
                 for k in dict.fromkeys(k for sp in info.species for k in info.climates[sp])]
     factors = {sp: list(fs) for sp, fs in info.factors.items()}
-    tables = [t for t in (_present_table(summary, factors), _future_table(summary), _ensemble_table(summary)) if t]
-    zones_csv = root / "zones.csv"
-    zones = None
-    if zones_csv.is_file():
-        zdf = _read_csv(zones_csv)
-        shown = zdf.head(MAX_TABLE_ROWS)
-        caption = "zones.csv: every zone, species and climate" if len(zdf) <= MAX_TABLE_ROWS else \
-            f"zones.csv: the first {MAX_TABLE_ROWS} of {len(zdf):,} rows (the whole table is in zones.csv)"
-        zones = _generic_table(shown, "table-zones", caption) if len(shown) else None
+    tables = [t for t in (present_table(summary, factors), future_table(summary), ensemble_table(summary)) if t]
+    zdf = _read_csv(root / ZONES_FILE)
+    overview = _overview_figures(root, info)
+    labels = {sp: {f["name"]: f.get("label") or "" for f in d.get("factors", [])}
+              for sp, d in model_doc.get("species", {}).items()}
+    results = results_section(RunTables(summary, _read_csv(root / TRANSITIONS_FILE), zdf, labels), overview)
     max_novel = float(pd.to_numeric(summary.get("share_novel"), errors="coerce").max()) if "share_novel" in summary else float("nan")
     ens = summary[summary["model"] == ENSEMBLE] if "model" in summary else summary
     min_agree = float(pd.to_numeric(ens.get("mean_agreement"), errors="coerce").min()) if not ens.empty else float("nan")
@@ -525,7 +410,8 @@ def report_context(run_dir: str | Path, *, config: Path | None = None, inputs: I
     return {
         "title": f"Ceiling run report: {_run_name(cfg, root)}",
         "version": __version__,
-        "folder": root.name,
+        "folder": str(folder) if folder is not None else root.name,
+        "results": results,
         "config": cfg,
         "inputs": _inputs(manifest, inputs),
         "packages": sorted(packages.items(), key=lambda kv: kv[0].lower()),
@@ -535,10 +421,10 @@ def report_context(run_dir: str | Path, *, config: Path | None = None, inputs: I
         "warnings": ((manifest or {}).get("warnings") or {}).get("messages", []),
         "has_manifest": manifest is not None,
         "species": _model_section(root, diag, model_doc),
-        "maps": _maps_section(root, info),
+        "maps": _maps_section(root, info, {f["file"] for f in overview.values() if f}),
         "community": _community(root),
         "tables": tables,
-        "zones": zones,
+        "zones": _zones_table(zdf),
         "zones_gpkg": (root / "zones.gpkg").is_file(),
         "cautions": CAUTIONS,
         "novel_rule": rule,
@@ -557,16 +443,18 @@ def render_report(context: dict[str, Any]) -> str:
     return template.render(**context)
 
 
-def build_report(run_dir: str | Path, *, config: Path | None = None, inputs: Iterable[Path] = ()) -> Path:
+def build_report(run_dir: str | Path, *, config: Path | None = None, inputs: Iterable[Path] = (),
+                 folder: str | Path | None = None) -> Path:
     """Write ``run_dir/report.html`` (atomically) and return its path.
 
     ``config`` and ``inputs`` describe the run while its manifest is not written yet (``ceiling
     run`` builds the report just before the manifest); once ``manifest.json`` exists, it is the
-    source of the config text, inputs, versions and checksums.
+    source of the config text, inputs, versions and checksums. ``folder`` is the run folder's
+    name as the user gave it, shown in the header (default: ``run_dir``'s name).
     """
     root = Path(run_dir)
     path = root / REPORT_FILE
-    ctx = report_context(root, config=config, inputs=inputs)
+    ctx = report_context(root, config=config, inputs=inputs, folder=folder)
     _embed(ctx)
     ctx["provenance"] = _provenance(root, _manifest(root), path)
     return atomic_write_text(path, render_report(ctx))
