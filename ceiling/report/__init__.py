@@ -15,8 +15,6 @@ table of contents stays in view beside the page (CSS ``position: sticky``, no sc
 
 from __future__ import annotations
 
-import base64
-import io
 import json
 import math
 import tomllib
@@ -39,17 +37,16 @@ from ..outputs.names import (
     TRANSITIONS_FILE,
     fit_panel_name,
 )
+from .figures import community_section, embed, figure, maps_section, overview_figures
 from .formatting import format_km2, format_percent, format_size, format_value, missing
 from .results import ZONES_FILE, RunTables, results_section
-from .tables import ensemble_table, future_table, generic_table, present_table
+from .tables import MAX_TABLE_ROWS, ensemble_table, future_table, generic_table, present_table, read_csv
 
 __all__ = ["REPORT_FILE", "build_report", "report_context", "render_report", "format_km2", "format_percent",
            "format_value", "CAUTIONS"]
 
 REPORT_FILE = "report.html"
 TEMPLATE = "template.html.j2"
-SCREEN_WIDTH = 1300  # embedded copies are reduced by the whole factor that brings them nearest this width
-MAX_TABLE_ROWS = 500  # longer optional tables (zones, community) are cut, saying so
 
 CAUTIONS = (
     "A ceiling is the potential upper limit of abundance that the climate factors allow (law of the "
@@ -65,74 +62,7 @@ CAUTIONS = (
 )
 
 
-# --- images -----------------------------------------------------------------------------------------------
-
-def _data_uri(path: Path) -> str:
-    """A screen copy of a PNG (reduced by the whole factor that brings it nearest SCREEN_WIDTH
-    pixels across, 256-colour palette) as a ``data:image/png;base64`` URI."""
-    from PIL import Image
-
-    with Image.open(path) as im:
-        im = im.convert("RGB")
-        f = max(1, round(im.width / SCREEN_WIDTH))
-        if f > 1:
-            im = im.reduce(f)
-        im = im.quantize(256, method=Image.Quantize.FASTOCTREE)
-        buf = io.BytesIO()
-        im.save(buf, format="PNG")
-    return "data:image/png;base64," + base64.b64encode(buf.getvalue()).decode("ascii")
-
-
-def _figure(root: Path, rel: Path, title: str, alt: str | None = None) -> dict[str, Any] | None:
-    """A figure to embed (its data URI is filled in by :func:`_embed`), or None if the file is missing."""
-    p = root / rel
-    if not p.is_file():
-        return None
-    return {"title": title, "alt": alt or title, "uri": "", "file": rel.as_posix(), "path": p}
-
-
-def _figures_in(obj: Any):
-    if isinstance(obj, dict):
-        if "path" in obj and "uri" in obj:
-            yield obj
-        else:
-            for v in obj.values():
-                yield from _figures_in(v)
-    elif isinstance(obj, list | tuple):
-        for v in obj:
-            yield from _figures_in(v)
-
-
-def _embed(context: dict[str, Any]) -> None:
-    """Fill in the data URI of every figure of the context (a few worker processes for many)."""
-    import multiprocessing
-    import os
-    from concurrent.futures import ProcessPoolExecutor
-
-    figs = list(_figures_in(context))
-    paths = [f["path"] for f in figs]
-    cpus = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
-    n = min(cpus, 4, len(paths) // 8)
-    if n > 1 and "fork" in multiprocessing.get_all_start_methods():
-        with ProcessPoolExecutor(max_workers=n, mp_context=multiprocessing.get_context("fork")) as pool:
-            uris = list(pool.map(_data_uri, paths, chunksize=4))
-    else:
-        uris = [_data_uri(p) for p in paths]
-    for f, uri in zip(figs, uris):
-        f["uri"] = uri
-        del f["path"]
-
-
 # --- reading the run folder ---------------------------------------------------------------------------------
-
-def _read_csv(path: Path) -> pd.DataFrame:
-    if not path.is_file() or path.stat().st_size == 0:
-        return pd.DataFrame()
-    try:
-        return pd.read_csv(path, keep_default_na=False, na_values=[""], dtype={"model": str, "scenario": str, "period": str})
-    except pd.errors.EmptyDataError:
-        return pd.DataFrame()
-
 
 def _manifest(root: Path) -> dict[str, Any] | None:
     p = root / MANIFEST_FILE
@@ -227,100 +157,10 @@ def _model_section(root: Path, diag: pd.DataFrame, model_doc: dict[str, Any]) ->
             "n_points": sd.get("n_points", ""), "dropped": sd.get("dropped", {}), "factors": rows,
             "limits": limits, "others": others, "screened": screened,
             "has_share": any(r["limiting_share"] not in ("", "–") for r in rows),
-            "fit_figure": _figure(root, fit_panel_name(sp), f"Ceiling fits for {sp}",
+            "fit_figure": figure(root, fit_panel_name(sp), f"Ceiling fits for {sp}",
                                   f"Survey points, fitted ceiling and median line of each factor for {sp}"),
         })
     return out
-
-
-# --- maps section ------------------------------------------------------------------------------------------------
-
-def _overview_figures(root: Path, info: Any) -> dict[str, dict[str, Any] | None]:
-    """Per species, the figure that opens its results: the ensemble's zone sheet (scenarios
-    across, periods down), or the first climate model's when the run has no ensemble."""
-    from .. import maps
-
-    out: dict[str, dict[str, Any] | None] = {}
-    for sp in info.species:
-        models = list(dict.fromkeys(k[1] for k in info.climates[sp] if k[0] != "present"))
-        model = ENSEMBLE if ENSEMBLE in models else (models[0] if models else None)
-        who = "ensemble of the climate models (release and constraint only where they agree)" if model == ENSEMBLE \
-            else f"climate model {model}"
-        out[sp] = None if model is None else _figure(
-            root, maps.comparison_sheet_name(sp, model, "zone"), f"{sp}: zone of change, {who}",
-            f"Zone of change of {sp} for each scenario (across) and period (down), {who}")
-    return out
-
-
-def _maps_section(root: Path, info: Any, shown: set[str] = frozenset()) -> list[dict[str, Any]]:
-    """The map sheets of each species; ``shown`` lists the figure files already in the results
-    (referred to, not embedded twice)."""
-    from .. import maps
-
-    out = []
-    for sp in info.species:
-        present = info.present(sp)
-        block: dict[str, Any] = {"name": sp, "present": None, "comparisons": [], "ensembles": [], "limiting": [],
-                                 "uncertainty": [], "climates": [], "shown_above": []}
-        if present is not None:
-            block["present"] = _figure(root, maps.climate_sheet_name(sp, present), maps.climate_title(sp, present),
-                                       f"Maps of the present ceiling, limiting factor and climate similarity for {sp}")
-        models = list(dict.fromkeys(k[1] for k in info.climates[sp] if k[0] != "present"))
-        for model in [m for m in models if m != ENSEMBLE] + ([ENSEMBLE] if ENSEMBLE in models else []):
-            for layer in ("change", "zone"):
-                who = "ensemble of the climate models" if model == ENSEMBLE else f"climate model {model}"
-                what = "change of the ceiling" if layer == "change" else "zone of change"
-                f = _figure(root, maps.comparison_sheet_name(sp, model, layer), f"{sp}: {what}, {who}",
-                            f"{what} for each scenario (across) and period (down), {who}")
-                if f and f["file"] in shown:
-                    block["shown_above"].append(f["title"])
-                elif f:
-                    block["comparisons"].append(f)
-        for key in info.ensembles(sp):
-            f = _figure(root, maps.climate_sheet_name(sp, key), maps.climate_title(sp, key))
-            if f:
-                block["ensembles"].append(f)
-        for kind, title in (("areas", "area limited by each factor"), ("switch", "limiting factor now and later")):
-            f = _figure(root, maps.limiting_figure_name(sp, kind), f"{sp}: {title}")
-            if f:
-                block["limiting"].append(f)
-        if present is not None:
-            f = _figure(root, maps.uncertainty_sheet_name(sp, present), maps.climate_title(sp, present) + ": fit uncertainty")
-            if f:
-                block["uncertainty"].append(f)
-        for model in [m for m in models if m != ENSEMBLE]:
-            for layer in maps.COMPARED_PROBABILITIES:
-                what = maps.TITLES[layer].lower()
-                f = _figure(root, maps.comparison_sheet_name(sp, model, layer), f"{sp}: {what}, climate model {model}",
-                            f"{what} (share of bootstrap replicates) for each scenario and period, climate model {model}")
-                if f:
-                    block["uncertainty"].append(f)
-        for key in info.futures(sp):
-            rel = maps.climate_sheet_name(sp, key)
-            if (root / rel).is_file():
-                block["climates"].append({"title": maps.climate_title(sp, key), "file": rel.as_posix()})
-        out.append(block)
-    return out
-
-
-def _community(root: Path) -> dict[str, Any] | None:
-    from .. import maps
-
-    d = root / "community"
-    if not d.is_dir():
-        return None
-    figs = []
-    for rel in maps.community_climates(root):
-        parts = rel.parts[1:]
-        title = "Community: present climate" if parts[:1] == ("present",) else "Community: " + ", ".join(
-            f"{k} {v}" for k, v in zip(("scenario", "climate model", "period"), parts))
-        f = _figure(root, maps.community_figure_name(rel), title)
-        if f:
-            figs.append(f)
-    csvs = sorted(d.rglob("*.csv")) + ([root / "community.csv"] if (root / "community.csv").is_file() else [])
-    tables = [generic_table(_read_csv(c).head(MAX_TABLE_ROWS), f"table-community-{i}", c.relative_to(root).as_posix())
-              for i, c in enumerate(csvs)]
-    return {"figures": figs, "tables": [t for t in tables if t["rows"]]}
 
 
 # --- provenance ----------------------------------------------------------------------------------------------------
@@ -389,8 +229,8 @@ def report_context(run_dir: str | Path, *, config: Path | None = None, inputs: I
         raise InputFileError(f"{root} is not a run folder: it has no {SUMMARY_FILE}")
     manifest = _manifest(root)
     info = run_info(root)
-    summary = _read_csv(root / SUMMARY_FILE)
-    diag = _read_csv(root / DIAGNOSTICS_FILE)
+    summary = read_csv(root / SUMMARY_FILE)
+    diag = read_csv(root / DIAGNOSTICS_FILE)
     model_doc = json.loads((root / MODEL_FILE).read_text(encoding="utf-8")) if (root / MODEL_FILE).is_file() else {}
     cfg = _config_block(manifest, config)
     packages = (manifest or {}).get("packages") or package_versions()
@@ -398,11 +238,11 @@ def report_context(run_dir: str | Path, *, config: Path | None = None, inputs: I
                 for k in dict.fromkeys(k for sp in info.species for k in info.climates[sp])]
     factors = {sp: list(fs) for sp, fs in info.factors.items()}
     tables = [t for t in (present_table(summary, factors), future_table(summary), ensemble_table(summary)) if t]
-    zdf = _read_csv(root / ZONES_FILE)
-    overview = _overview_figures(root, info)
+    zdf = read_csv(root / ZONES_FILE)
+    overview = overview_figures(root, info)
     labels = {sp: {f["name"]: f.get("label") or "" for f in d.get("factors", [])}
               for sp, d in model_doc.get("species", {}).items()}
-    results = results_section(RunTables(summary, _read_csv(root / TRANSITIONS_FILE), zdf, labels), overview)
+    results = results_section(RunTables(summary, read_csv(root / TRANSITIONS_FILE), zdf, labels), overview)
     max_novel = float(pd.to_numeric(summary.get("share_novel"), errors="coerce").max()) if "share_novel" in summary else float("nan")
     ens = summary[summary["model"] == ENSEMBLE] if "model" in summary else summary
     min_agree = float(pd.to_numeric(ens.get("mean_agreement"), errors="coerce").min()) if not ens.empty else float("nan")
@@ -421,8 +261,8 @@ def report_context(run_dir: str | Path, *, config: Path | None = None, inputs: I
         "warnings": ((manifest or {}).get("warnings") or {}).get("messages", []),
         "has_manifest": manifest is not None,
         "species": _model_section(root, diag, model_doc),
-        "maps": _maps_section(root, info, {f["file"] for f in overview.values() if f}),
-        "community": _community(root),
+        "maps": maps_section(root, info, {f["file"] for f in overview.values() if f}),
+        "community": community_section(root),
         "tables": tables,
         "zones": _zones_table(zdf),
         "zones_gpkg": (root / "zones.gpkg").is_file(),
@@ -455,6 +295,6 @@ def build_report(run_dir: str | Path, *, config: Path | None = None, inputs: Ite
     root = Path(run_dir)
     path = root / REPORT_FILE
     ctx = report_context(root, config=config, inputs=inputs, folder=folder)
-    _embed(ctx)
+    embed(ctx)
     ctx["provenance"] = _provenance(root, _manifest(root), path)
     return atomic_write_text(path, render_report(ctx))

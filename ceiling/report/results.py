@@ -20,7 +20,7 @@ from typing import Any
 import pandas as pd
 
 from ..outputs.names import ENSEMBLE, SUMMARY_FILE, TRANSITIONS_FILE
-from .formatting import format_km2, format_percent, missing
+from .formatting import format_km2, format_percent
 
 __all__ = ["RunTables", "results_section", "last_period", "main_shift", "zone_ranking", "overview_table"]
 

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from pathlib import Path
 from typing import Any
 
 import pandas as pd
@@ -10,8 +11,20 @@ from ..categories import ENSEMBLE_ZONES, ZONES
 from ..outputs.names import ENSEMBLE
 from .formatting import format_km2, format_percent, format_value, missing
 
-__all__ = ["cell", "row_key", "present_table", "future_table", "ensemble_table", "generic_table"]
+__all__ = ["MAX_TABLE_ROWS", "read_csv", "cell", "row_key", "present_table", "future_table", "ensemble_table", "generic_table"]
 
+
+
+MAX_TABLE_ROWS = 500  # longer optional tables (zones, community) are cut, saying so
+
+
+def read_csv(path: Path) -> pd.DataFrame:
+    if not path.is_file() or path.stat().st_size == 0:
+        return pd.DataFrame()
+    try:
+        return pd.read_csv(path, keep_default_na=False, na_values=[""], dtype={"model": str, "scenario": str, "period": str})
+    except pd.errors.EmptyDataError:
+        return pd.DataFrame()
 
 
 def cell(col: str, text: str, *, num: bool = True) -> dict[str, Any]:
