@@ -3,7 +3,7 @@
 Six factors on an n x n geographic grid: smooth fields (a sine across, a cosine down, a shift per
 future) plus Gaussian noise, written as tiled (512) deflate float32 GeoTIFFs with predictor 3,
 like the climate layers users project. The model is built in code: six quadratic ceilings
-peaking inside the fields' range, with a 2,000-value reference sample per factor for novelty.
+peaking inside the fields' range, with a 2,000-value reference sample per factor for the similarity layer (MESS).
 """
 
 from __future__ import annotations

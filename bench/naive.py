@@ -6,7 +6,7 @@ Every layer of a climate is opened whole with rioxarray, the maps of the law of 
 of the change are computed with NumPy expressions over the whole grid (the minimum over a stack
 of predictors, then change, percent change, zone and switch), and written with rioxarray
 (GeoTIFF, COG driver, deflate level 1 with a predictor, all cores), as the projection writes its
-GeoTIFFs. It does less than ``ceiling project``: no novelty maps (MESS), no NetCDF, summary
+GeoTIFFs. It does less than ``ceiling project``: no similarity maps (MESS), no NetCDF, summary
 tables, figures, report or manifest; the comparison therefore understates the projection's lead.
 """
 

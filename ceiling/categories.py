@@ -99,7 +99,7 @@ def hex_to_rgba(h: str) -> tuple[int, int, int, int]:
 
 def layer_categories(layer: str, factors: list[str], *, ensemble: bool = False) -> tuple[Category, ...] | None:
     """The category table of an output layer (None for continuous layers); used by every writer."""
-    if layer in ("limiting", "novel_factor"):
+    if layer in ("limiting", "least_similar"):
         return factor_categories(factors)
     if layer == "zone":
         return ENSEMBLE_ZONES if ensemble else ZONES

@@ -4,14 +4,14 @@ The projection's per-cell work, fused. For one species and one chunk of one clim
 cell by cell and without whole-chunk temporaries:
 
 - the ceiling and the limiting factor (law of the minimum, as :mod:`ceiling.kernels_fast`);
-- novelty (MESS) and the most dissimilar factor, and the extrapolated flag;
+- similarity (MESS) and the least similar factor, and the extrapolated flag;
 - for a future: change, percent change, zone class and limiting-factor switch against the
   present ceiling and limiting factor;
 - the summary statistics of the chunk (areas by zone, by limiting factor now and later, switch
   matrix, area-weighted sums, the change histogram), as :class:`ceiling.projection.StatsLayout`.
 
 The reference is the composition the lazy API builds: :func:`ceiling.projection.project`
-(:func:`ceiling.kernels_fast.evaluate` and :func:`ceiling.novelty.mess_kernel`),
+(:func:`ceiling.kernels_fast.evaluate` and :func:`ceiling.mess.mess_kernel`),
 :func:`ceiling.projection.compare` (:func:`ceiling.kernels.change_kernel`,
 :func:`~ceiling.kernels.zone_kernel`, :func:`~ceiling.kernels.switch_kernel`) and
 :func:`ceiling.projection.climate_stats`. :func:`climate_chunk_reference` is that composition on
@@ -19,7 +19,7 @@ plain arrays; :func:`climate_chunk` runs the compiled loop when numba is install
 reference otherwise. Maps agree exactly (the same float64 operations in the same order, then the
 same rounding to float32); the statistics agree to summation order (the reference sums pairwise).
 
-Novelty needs, per factor, the share of reference values below a cell's value. The reference
+Similarity needs, per factor, the share of reference values below a cell's value. The reference
 finds it by binary search (``searchsorted``); here a table of counts at evenly spaced values
 (eight times as many as reference values) gives the count at a value just below the cell's, and
 a short forward scan in the sorted sample finishes it, so the count is exact and the cost does
@@ -92,7 +92,7 @@ def mess_table(refs: list[np.ndarray]) -> MessTable:
         starts = lo + width * (np.arange(m) - 1.0)
         below[j] = np.searchsorted(r, starts, side="left")
         inv[j] = 1.0 / width
-        pct[j, : r.size + 1] = 100.0 * np.arange(r.size + 1) / r.size  # as novelty.similarity computes f
+        pct[j, : r.size + 1] = 100.0 * np.arange(r.size + 1) / r.size  # as mess.similarity computes f
     return MessTable(ref, n, below, inv, pct)
 
 
@@ -122,7 +122,7 @@ def climate_chunk_reference(
     """
     from .kernels import change_kernel, switch_kernel, zone_kernel
     from .kernels_fast import evaluate
-    from .novelty import mess_kernel
+    from .mess import mess_kernel
     from .projection import StatsLayout, _stats_block
 
     v64 = {f: np.asarray(values[f]).astype(np.float64) for f in model.factor_names}
@@ -136,7 +136,7 @@ def climate_chunk_reference(
     code = np.asarray(code, dtype=np.uint8)
     mess32 = mess.astype(np.float32)
     ext = np.where(np.isnan(mess32), NODATA_CODE, (mess32 < 0).astype(np.uint8)).astype(np.uint8)
-    maps = {"ceiling": c32, "limiting": code, "novelty": mess32, "novel_factor": far.astype(np.uint8),
+    maps = {"ceiling": c32, "limiting": code, "similarity": mess32, "least_similar": far.astype(np.uint8),
             "extrapolated": ext}
     layout = StatsLayout(k=len(model.factors), n_zones=params.n_zones, hist_bins=params.hist_bins,
                          hist_max=params.hist_max)
@@ -184,7 +184,7 @@ def _loop(xs, kind, center, scale, clip, lo, hi, coef, knots, n_knots, transform
                 jj = np.float64(j)
                 # the law of the minimum, as kernels_fast._loop
                 _fold_factor(x, m, j, kind, center, scale, clip, lo, hi, coef, knots, n_knots, eb, best, arg, bad)
-                # novelty (MESS): similarity of the value to the factor's reference sample
+                # similarity (MESS) of the value to the factor's reference sample
                 nj = n_ref[j]
                 rlo, rhi = ref[j, 0], ref[j, nj - 1]
                 span = rhi - rlo
@@ -208,7 +208,7 @@ def _loop(xs, kind, center, scale, clip, lo, hi, coef, knots, n_knots, transform
                         cnts[i] = c
                 for i in range(m):
                     p = np.float64(x[i])
-                    # S as in novelty.similarity, with f = 100 count / n from the table
+                    # S as in mess.similarity, with f = 100 count / n from the table
                     f = pct[j, cnts[i]]
                     s = 2.0 * f if f <= 50 else 2.0 * (100.0 - f)
                     if p <= rlo:  # f = 0
@@ -393,7 +393,7 @@ def climate_chunk(
            future, pc, pl, area, float(params.release), float(params.constraint), float(params.floor),
            float(params.zero), params.novel == "mask", int(params.n_zones), hedges, float(params.hist_max),
            c, code, mess, far, ext, change, pct, zone, switch, stats, off)
-    maps = {"ceiling": c, "limiting": code, "novelty": mess, "novel_factor": far, "extrapolated": ext}
+    maps = {"ceiling": c, "limiting": code, "similarity": mess, "least_similar": far, "extrapolated": ext}
     if future:
         maps.update(change=change, change_pct=pct, zone=zone, switch=switch)
     return maps, stats

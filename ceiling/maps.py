@@ -5,10 +5,10 @@ Every figure is built from the files of a run folder (the GeoTIFFs, ``summary.cs
 :func:`make_figures`. Figures written, all under ``figures/``:
 
 - a map sheet per species and climate (:func:`climate_sheet_name`): the present (ceiling,
-  limiting factor, novelty), each scenario / climate model / period (ceiling, change, zone,
-  limiting factor, novelty) and each ensemble (median ceiling, median change with the cells of
+  limiting factor, similarity), each scenario / climate model / period (ceiling, change, zone,
+  limiting factor, similarity) and each ensemble (median ceiling, median change with the cells of
   low agreement hatched, zone, most common limiting factor, agreement); novel-climate
-  (extrapolated) cells are hatched on the novelty maps;
+  (extrapolated) cells are hatched on the similarity maps;
 - comparison sheets (:func:`comparison_sheet_name`): scenarios across, periods down, one sheet
   per climate model and one for the ensemble, with one shared colour bar or legend (change and
   zone; with bootstrap layers also the probabilities of release and of constraint);
@@ -22,7 +22,7 @@ Conventions: north up; axes in the grid's CRS units (degrees with a graticule fo
 grids); nodata drawn as a neutral grey background inside a darker outline of the valid cells;
 continuous colour maps perceptually uniform (viridis, cividis) or diverging and colour-blind
 readable (RdBu for change, centred on zero with symmetric limits shared by every climate of a
-species; PRGn for novelty); categorical colours from :mod:`ceiling.categories`, the same as
+species; PRGn for similarity); categorical colours from :mod:`ceiling.categories`, the same as
 in the GeoTIFF colour tables. Big grids are read decimated (at most :data:`MAX_SIDE` cells
 along the longer side, through the GeoTIFF overviews), so figures of huge grids stay cheap.
 Figures have fixed sizes in inches (a whole number of pixels at :data:`DPI`); no layout engine.
@@ -81,7 +81,7 @@ __all__ = [
     "community_sheet", "save_figure", "make_figures", "figure_tasks", "legend_labels", "climate_title",
     "climate_sheet_name", "uncertainty_sheet_name", "comparison_sheet_name", "limiting_figure_name",
     "community_figure_name", "PRESENT_PANELS", "FUTURE_PANELS", "ENSEMBLE_PANELS", "UNCERTAINTY_PANELS",
-    "COMPARED_PROBABILITIES", "TITLES", "NOVEL_HATCH_LABEL", "LOW_AGREEMENT_LABEL",
+    "COMPARED_PROBABILITIES", "TITLES", "NOVEL_HATCH_LABEL", "LOW_AGREEMENT_LABEL", "COMMUNITY_SCALES",
 ]
 
 DPI = 200
@@ -93,26 +93,26 @@ HATCH_COLOUR = "#252525"
 HATCH = "//////"
 CMAP_CEILING = "viridis"
 CMAP_CHANGE = "RdBu"  # red: the ceiling falls, blue: it rises (as constraint/release in the zone colours)
-CMAP_NOVELTY = "PRGn"  # purple: novel climate (as the 'novel climate' class), green: familiar
+CMAP_SIMILARITY = "PRGn"  # purple: novel climate (as the 'novel climate' class), green: familiar
 CMAP_SHARE = "cividis"
 
-PRESENT_PANELS = ("ceiling", "limiting", "novelty")
-FUTURE_PANELS = ("ceiling", "change", "zone", "limiting", "novelty")
+PRESENT_PANELS = ("ceiling", "limiting", "similarity")
+FUTURE_PANELS = ("ceiling", "change", "zone", "limiting", "similarity")
 ENSEMBLE_PANELS = ("median_ceiling", "median_change", "zone", "limiting", "agreement")
 UNCERTAINTY_PANELS = ("ceiling_lower", "ceiling_upper", "change_lower", "change_upper", "p_release", "p_constraint")
 COMPARED_PROBABILITIES = ("p_release", "p_constraint")  # bootstrap layers drawn on comparison sheets
 CEILING_LIKE = ("ceiling", "median_ceiling", "mean_ceiling", "ceiling_lower", "ceiling_upper")
 CHANGE_LIKE = ("change", "median_change", "mean_change", "change_lower", "change_upper", "change_min", "change_max")
 SHARE_LIKE = ("agreement", "limiting_share", "p_release", "p_constraint")
-CATEGORICAL = ("zone", "limiting", "novel_factor", "extrapolated", "robustness", "switch")
+CATEGORICAL = ("zone", "limiting", "least_similar", "extrapolated", "robustness", "switch")
 
 TITLES = {
     "ceiling": "Potential maximum abundance (ceiling)",
     "change": "Change of the ceiling",
     "zone": "Zone of change",
     "limiting": "Limiting factor",
-    "novelty": "Climate similarity to the survey (MESS)",
-    "novel_factor": "Most dissimilar factor",
+    "similarity": "Climate similarity to the survey (MESS)",
+    "least_similar": "Least similar factor",
     "median_ceiling": "Ceiling, median of the climate models",
     "mean_ceiling": "Ceiling, mean of the climate models",
     "median_change": "Change, median of the climate models",
@@ -128,13 +128,13 @@ TITLES = {
 }
 SCALE_LABELS = {
     **{n: "abundance (survey units)" for n in CEILING_LIKE + CHANGE_LIKE},
-    "novelty": "MESS (%); below 0: novel climate",
+    "similarity": "MESS (%); below 0: novel climate",
     "agreement": "share of climate models",
     "limiting_share": "share of climate models",
     "p_release": "share of bootstrap replicates",
     "p_constraint": "share of bootstrap replicates",
 }
-LEGEND_TITLES = {"zone": "zone class", "limiting": "limiting factor", "novel_factor": "most dissimilar factor",
+LEGEND_TITLES = {"zone": "zone class", "limiting": "limiting factor", "least_similar": "least similar factor",
                  "extrapolated": "climate", "robustness": "agreement"}
 NOVEL_HATCH_LABEL = "novel climate (outside the survey's range)"
 LOW_AGREEMENT_LABEL = "low agreement between climate models"
@@ -298,15 +298,15 @@ class Limits:
 
     ceiling: float
     change: float
-    novelty_low: float
-    novelty_high: float
+    similarity_low: float
+    similarity_high: float
 
 
 def species_limits(info: RunInfo, species: str) -> Limits:
     """The colour limits of the layers drawn for a species, over all its climates."""
     ceil_max, change_max, nov_min, nov_max = 0.0, 0.0, 0.0, 0.0
     for key in info.climates[species]:
-        drawn = ("ceiling", "median_ceiling", "change", "median_change", "novelty")
+        drawn = ("ceiling", "median_ceiling", "change", "median_change", "similarity")
         if key[0] == "present":
             drawn += ("ceiling_lower", "ceiling_upper")  # the present's uncertainty sheet
         for layer in drawn:
@@ -467,8 +467,8 @@ def _norm_for(layer: str, limits: Limits) -> tuple[str, mcolors.Normalize]:
         return CMAP_CEILING, mcolors.Normalize(0.0, limits.ceiling)
     if layer in CHANGE_LIKE:
         return CMAP_CHANGE, mcolors.Normalize(-limits.change, limits.change)
-    if layer == "novelty":
-        return CMAP_NOVELTY, mcolors.TwoSlopeNorm(0.0, limits.novelty_low, limits.novelty_high)
+    if layer == "similarity":
+        return CMAP_SIMILARITY, mcolors.TwoSlopeNorm(0.0, limits.similarity_low, limits.similarity_high)
     if layer in SHARE_LIKE:
         return CMAP_SHARE, mcolors.Normalize(0.0, 1.0)
     return CMAP_CEILING, mcolors.Normalize()
@@ -496,7 +496,7 @@ def _load_panel(info: RunInfo, species: str, key: tuple[str, str, str], layer: s
     cats = info.categories(species, layer, ensemble=ensemble)
     ml = read_layer(info.path(species, key, layer), categorical=layer in CATEGORICAL)
     p = _Panel(layer, ml, cats, title=TITLES.get(layer, layer.replace("_", " ")))
-    if layer == "novelty" and info.has(species, key, "extrapolated"):
+    if layer == "similarity" and info.has(species, key, "extrapolated"):
         ex = read_layer(info.path(species, key, "extrapolated"), categorical=True, max_side=max(ml.data.shape))
         if ex.data.shape == ml.data.shape:
             p.hatch, p.hatch_label = np.ma.filled(ex.data, 0) == 1, NOVEL_HATCH_LABEL
@@ -955,6 +955,17 @@ COMMUNITY_TITLES = {
     "n_release": "Species in release",
     "n_constraint": "Species in constraint",
 }
+# the colour-bar label of each community panel, by what the layer holds (not by how it is stored:
+# richness_change is float32, so that the loss of a species can be negative)
+COMMUNITY_SCALES = {
+    "total_ceiling": "abundance summed over species (survey units)",
+    "total_change": "change of the summed abundance (survey units)",
+    "richness": "number of species",
+    "richness_change": "change in the number of species",
+    "n_release": "number of species",
+    "n_constraint": "number of species",
+}
+COMMUNITY_COUNTS = ("richness", "richness_change", "n_release", "n_constraint")  # whole numbers of species
 
 
 def community_climates(root: str | Path) -> list[Path]:
@@ -988,7 +999,8 @@ def _community_panel(path: Path, limits: dict[str, float]) -> _Panel:
     layer = MapLayer(data, layer.extent, layer.crs, layer.full_shape)
     top = limits.get(name, 0.0)
     change = "change" in name
-    if integer and top <= 40:  # counts of species: one colour per whole number
+    counts = integer or name in COMMUNITY_COUNTS
+    if counts and top <= 40:  # counts of species: one colour per whole number
         n = max(1, int(math.ceil(top)))
         edges = np.arange(-n - 0.5, n + 1.5) if change else np.arange(-0.5, n + 1.5)
         cmap = CMAP_CHANGE if change else CMAP_CEILING
@@ -997,7 +1009,7 @@ def _community_panel(path: Path, limits: dict[str, float]) -> _Panel:
         cmap, norm = CMAP_CHANGE, mcolors.Normalize(-_nice_up(top), _nice_up(top))
     else:
         cmap, norm = CMAP_CEILING, mcolors.Normalize(0.0, _nice_up(top))
-    scale = "species" if integer else "abundance summed over species (survey units)"
+    scale = COMMUNITY_SCALES.get(name, "number of species" if integer else "value of the layer")
     return _Panel(name, layer, None, title=COMMUNITY_TITLES.get(name, name.replace("_", " ")), cmap=cmap, norm=norm,
                   scale=scale)
 

@@ -70,7 +70,7 @@ class CeilingModel:
     # (replicates, n_params) of coefficients in that factor's basis, and the settings used
     replicates: Mapping[str, np.ndarray] | None = None
     bootstrap: Mapping[str, Any] | None = None
-    # the reference sample for novelty (MESS): factor name -> sorted values at the survey points
+    # the reference sample for the similarity layer (MESS): factor name -> sorted values at the survey points
     reference: Mapping[str, np.ndarray] | None = None
     # factors fitted but left out of the minimum by screening (in_minimum False, with reason);
     # ``factors`` holds only the factors in the minimum, in config order, and limiting codes

@@ -21,7 +21,7 @@ from .grids import BlockReader, GridSpec, layer_reader, open_layer
 from .kernels import NODATA_CODE, change_kernel, switch_kernel, zone_kernel
 from .kernels_fast import evaluate as evaluate_fast
 from .model import CeilingModel
-from .novelty import check_reference, mess_kernel
+from .mess import check_reference, mess_kernel
 from .scenarios import Climate, ProjectionOptions
 
 __all__ = ["climate_readers", "uncertainty", "has_replicates", "PRESENT_BOUNDS", "FUTURE_BOUNDS", "open_climate", "project", "novel_rule", "with_policy", "compare", "climate_stats", "valid_counts", "StatsLayout", "model_units"]
@@ -118,7 +118,7 @@ def project(
     models: Sequence[CeilingModel], layers: dict[str, xr.DataArray], *, mask: xr.DataArray | None = None,
     novel: str | None = None,
 ) -> xr.Dataset:
-    """Lazy ceiling, limiting factor, novelty (MESS) and most dissimilar factor for every species.
+    """Lazy ceiling, limiting factor, similarity (MESS) and least similar factor for every species.
 
     Factor codes follow each model's own factor order; 255 marks nodata (any factor missing).
     ``novel`` is the rule for cells beyond the sampled range (see :func:`with_policy`).
@@ -152,8 +152,8 @@ def project(
         {
             "ceiling": (dims, stacked[:s]),
             "limiting": (dims, code(stacked[s : 2 * s])),
-            "novelty": (dims, mess),
-            "novel_factor": (dims, code(stacked[3 * s :])),
+            "similarity": (dims, mess),
+            "least_similar": (dims, code(stacked[3 * s :])),
             "extrapolated": (dims, extrapolated),
         },
         coords=coords,

@@ -253,7 +253,7 @@ def run_projection(
     trans: list[dict] = []
     # open every climate's layers first, so that a bad layer is refused before any computing
     opened = [climate_readers(c, grid, used, units, opts) for c in cl]
-    from .novelty import check_reference
+    from .mess import check_reference
     from .outputs.folder import check_free_space
 
     for m in ms:
@@ -376,7 +376,7 @@ def _netcdf(stage: Path, grid: GridSpec, ms: list[CeilingModel], cl: list[Climat
 
     def spec(j: int | None) -> Callable:
         def one(i: int, layer: str):
-            lut = switch_luts[i] if layer == "switch" else luts[i] if layer in ("limiting", "novel_factor") else None
+            lut = switch_luts[i] if layer == "switch" else luts[i] if layer in ("limiting", "least_similar") else None
             if j is None:
                 return f"{layer}_present", (i,), lut
             return layer, (i, j), lut
@@ -488,7 +488,7 @@ def _project_to_folder(cfg: RunConfig, out: Path, cl: list[Climate], inputs: lis
         from .report import build_report
         t_report = time.perf_counter()
         n_figures = len(make_figures(stage, workers=threads))  # --threads caps the figure processes too
-        build_report(stage, config=cfg.source, inputs=inputs)
+        build_report(stage, config=cfg.source, inputs=inputs, folder=out)  # named as given, not the staging folder
         run.timings["figures_and_report"] = time.perf_counter() - t_report
         if progress:
             progress(f"wrote {n_figures} figures and report.html in {run.timings['figures_and_report']:.1f} s")

@@ -90,7 +90,7 @@ def model_document(species: dict[str, list[dict[str, Any]]], *, outside: str = "
 
 
 def _reference(factor: dict[str, Any]) -> list[float]:
-    """A reference sample for novelty: 101 values spread evenly over the observed range."""
+    """A reference sample for the similarity layer (MESS): 101 values spread evenly over the observed range."""
     lo, hi = factor["observed_range"]
     return [float(v) for v in np.linspace(lo, hi, 101)]
 

@@ -410,3 +410,31 @@ def test_svg_on_request_and_unknown_formats_refused(run, info, tmp_path):
     assert "tmax_warm" in p.read_text(encoding="utf-8")  # text kept as text (svg.fonttype none)
     with pytest.raises(ValueError, match="png or svg"):
         maps.make_figures(run, formats=("jpg",))
+
+
+def colour_bar_label(fig, panel) -> str:
+    """The label of the colour bar drawn right of ``panel`` (the nearest axes to its right whose
+    middle lies within the panel's height)."""
+    p = panel.get_position()
+    bars = [ax for ax in fig.axes if ax is not panel and ax.get_ylabel()
+            and ax.get_position().x0 >= p.x1 - 1e-6 and p.y0 <= (ax.get_position().y0 + ax.get_position().y1) / 2 <= p.y1]
+    assert bars, f"no colour bar beside {panel.get_title()!r}"
+    return min(bars, key=lambda ax: ax.get_position().x0).get_ylabel()
+
+
+def test_community_panels_are_labelled_by_what_they_show(tmp_path):
+    # richness_change is stored as float32 (a loss is negative) like the summed ceilings; its colour
+    # bar must still speak of species, and only the summed ceilings of abundance
+    grid = dict(west=10.0, north=50.0, cell=0.1)
+    rel = Path("community") / "s1" / "m1" / "p1"
+    rng = np.random.default_rng(3)
+    counts = rng.integers(0, 4, (12, 15)).astype(float)
+    layers = {"total_ceiling": rng.uniform(0, 90, (12, 15)), "total_change": rng.uniform(-20, 20, (12, 15)),
+              "richness": counts, "richness_change": counts - 2.0, "n_release": counts, "n_constraint": 3.0 - counts}
+    for name, data in layers.items():
+        write_tif(tmp_path / rel / f"{name}.tif", data, **grid)
+    fig = maps.community_sheet(tmp_path, rel)
+    labels = {name: colour_bar_label(fig, axes_titled(fig, maps.COMMUNITY_TITLES[name])) for name in layers}
+    assert labels == {name: maps.COMMUNITY_SCALES[name] for name in layers}
+    assert "species" in labels["richness_change"] and "change" in labels["richness_change"]
+    assert [n for n, lab in labels.items() if "abundance" in lab] == ["total_ceiling", "total_change"]

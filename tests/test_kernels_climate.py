@@ -1,8 +1,8 @@
 """The fused per-chunk kernel (ceiling.kernels_climate) against the reference composition.
 
 The reference is what the lazy API computes: ``kernels_fast.evaluate`` (tested against the law
-of the minimum in test_kernels_fast.py), ``novelty.mess_kernel`` (tested on hand-worked MESS
-values in test_novelty_ensemble.py), ``kernels.change_kernel`` / ``zone_kernel`` /
+of the minimum in test_kernels_fast.py), ``mess.mess_kernel`` (tested on hand-worked MESS
+values in test_similarity_ensemble.py), ``kernels.change_kernel`` / ``zone_kernel`` /
 ``switch_kernel`` and ``projection._stats_block``. Maps must agree exactly (NaN where NaN),
 statistics to summation order.
 """
@@ -92,7 +92,7 @@ def test_fused_kernel_equals_the_reference_composition(case):
 
 def test_mess_table_counts_equal_searchsorted():
     # Source: numpy.searchsorted (side="left") is the definition of "reference values below p"
-    # used by novelty.similarity; the table must give the same count for every value.
+    # used by mess.similarity; the table must give the same count for every value.
     rng = np.random.default_rng(5)
     r = np.sort(np.concatenate([rng.normal(0, 1, 500), np.full(200, 0.25), [-3.0, 3.0]]))
     tab = mess_table([r])
@@ -115,11 +115,11 @@ def test_mess_table_counts_equal_searchsorted():
 
 def test_mess_hand_worked_values_through_the_fused_kernel():
     # Source: hand-worked from the MESS formula (Elith et al. 2010), quoted from memory (see
-    # test_novelty_ensemble.py): reference {1..10}; p = 5.5, 3, 8.5, 0.1, 11.8, 1, 10 give
+    # test_similarity_ensemble.py): reference {1..10}; p = 5.5, 3, 8.5, 0.1, 11.8, 1, 10 give
     # S = 100, 40, 40, -10, -20, 0, 20
     f = factor("a", "linear", [1.0, 0.0], 1.0, 10.0, "none", "hold")
     m = CeilingModel("sp", (f,), 0.95, "none", "hold", reference={"a": np.arange(1.0, 11.0)})
     x = np.array([[5.5, 3.0, 8.5, 0.1, 11.8, 1.0, 10.0]], dtype=np.float32)
     maps, _ = climate_chunk(m, {"a": x}, np.ones_like(x, dtype=np.float64), params=ChunkParams())
-    np.testing.assert_allclose(maps["novelty"][0], [100, 40, 40, -10, -20, 0, 20], atol=2e-5)
+    np.testing.assert_allclose(maps["similarity"][0], [100, 40, 40, -10, -20, 0, 20], atol=2e-5)
     assert maps["extrapolated"][0].tolist() == [0, 0, 0, 1, 1, 0, 0]

@@ -26,7 +26,7 @@ SPECIES = ["sp_a", "sp_b", "sp_c"]
 # Category names as documented (ceiling/categories.py; README): codes 0..5
 ZONE_NAMES = ["stable", "release", "constraint", "opens", "closes", "absent"]
 SWITCH_NAMES = [f"{a} (unchanged)" if a == b else f"{a} -> {b}" for a in FACTORS for b in FACTORS]
-CATEGORICAL = {"limiting": FACTORS, "zone": ZONE_NAMES, "switch": SWITCH_NAMES, "novel_factor": FACTORS,
+CATEGORICAL = {"limiting": FACTORS, "zone": ZONE_NAMES, "switch": SWITCH_NAMES, "least_similar": FACTORS,
                "extrapolated": ["within sampled range", "novel climate"]}
 ENSEMBLE_CATEGORICAL = {"robustness", "zone", "limiting"}
 FLOAT_UNITS = {"ceiling": "1", "change": "1", "change_pct": "%"}

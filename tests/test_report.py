@@ -268,6 +268,93 @@ def test_provenance_lists_output_checksums(run, html):
         assert listed[rel]["sha256"] == sha256(run / rel), rel
 
 
+# --- the results section, against the run's own tables ------------------------------------------------------------
+
+def median(values: list[float]) -> float:
+    v = sorted(values)
+    n = len(v)
+    return v[n // 2] if n % 2 else (v[n // 2 - 1] + v[n // 2]) / 2
+
+
+def test_results_table_shows_the_medians_and_the_ensemble_of_summary_csv(run, html):
+    doc = parse(html)
+    rows = read_rows(run / "summary.csv")
+    tables = {k: v for k, v in doc.tables.items() if k.startswith("results-table-")}
+    assert len(tables) == len({r["species"] for r in rows})
+    checked = 0
+    for _tid, trs in tables.items():
+        for key, cells in trs:
+            same = [r for r in rows if (r["species"], r["scenario"], r["period"]) == (key["species"], key["scenario"], key["period"])]
+            models = [r for r in same if r["model"] not in ("", "ensemble")]
+            ens = [r for r in same if r["model"] == "ensemble"]
+            assert models and len(ens) == 1, key
+            for zone in ("release", "constraint"):
+                col = f"area_km2_{zone}"
+                want = median([float(r[col]) for r in models])
+                shown = number(cells[col], "km²")
+                assert shown == pytest.approx(want, abs=0.51 if shown >= 100 else 0.051), (key, col)
+                assert number(cells[f"robust_{col}"], "km²") == pytest.approx(float(ens[0][col]), abs=0.51), (key, col)
+            want = 100 * median([float(r["share_novel"]) for r in models])
+            assert number(cells["share_novel"], "%") == pytest.approx(want, abs=0.051), key
+            checked += 1
+    assert checked == len({(r["species"], r["scenario"], r["period"]) for r in rows if r["scenario"] != "present"})
+    # every number names its source: table file and column
+    for m in re.finditer(r'<td class="num" data-col="([^"]+)" data-src="([^"]+)"', html):
+        col, src = m.groups()
+        assert src.startswith("summary.csv: ") and col.replace("robust_", "") in src, (col, src)
+
+
+def test_results_name_the_main_shift_of_limiting_factor_from_transitions_csv(run, html):
+    """Recomputed here from transitions.csv: per scenario at the last period, the pair of factors
+    (now -> later, different) with the largest median area over the climate models; its share is
+    the median over models of that area over the area the first factor limits now."""
+    rows = read_rows(run / "transitions.csv")
+    sp = rows[0]["species"]
+    text = " ".join(" ".join(parse(html).section_text["results"]).split())
+    for scenario in dict.fromkeys(r["scenario"] for r in rows if r["species"] == sp):
+        mine = [r for r in rows if r["species"] == sp and r["scenario"] == scenario]
+        last = max({r["period"] for r in mine})
+        mine = [r for r in mine if r["period"] == last]
+        models = sorted({r["model"] for r in mine})
+        now = {(r["model"], r["limiting_now"]): 0.0 for r in mine}
+        for r in mine:
+            now[(r["model"], r["limiting_now"])] += float(r["area_km2"])
+        pairs = {(r["limiting_now"], r["limiting_later"]) for r in mine if r["limiting_now"] != r["limiting_later"]}
+
+        def moved(pair, model):
+            return sum(float(r["area_km2"]) for r in mine if r["model"] == model and (r["limiting_now"], r["limiting_later"]) == pair)
+
+        frm, to = max(pairs, key=lambda p: median([moved(p, m) for m in models]))
+        share = median([moved((frm, to), m) / now[(m, frm)] for m in models if now[(m, frm)] > 0])
+        sentence = re.search(rf"Under {re.escape(scenario)} by {re.escape(last)}, ([\d.]+ %) of the area limited by "
+                             rf"[^()]*\({re.escape(frm)}\) becomes limited by [^()]*\({re.escape(to)}\)", text)
+        assert sentence, (scenario, frm, to, text[:600])
+        assert number(sentence.group(1), "%") == pytest.approx(100 * share, abs=0.051)
+    assert "Source: transitions.csv: area_km2" in text
+
+
+def test_results_rank_the_zones_by_their_share_in_constraint(run, html):
+    if not (run / "zones.csv").is_file():
+        pytest.skip("the demo has no zones")
+    doc = parse(html)
+    zrows = read_rows(run / "zones.csv")
+    ranked = {k: [(key["zone"], cells) for key, cells in v if "zone" in key] for k, v in doc.tables.items()
+              if k.startswith("results-zones-")}
+    assert ranked
+    for tid, trs in ranked.items():
+        sp, scenario, period = re.search(r'<table id="%s"[^>]*data-species="([^"]*)" data-scenario="([^"]*)" '
+                                         r'data-period="([^"]*)"' % tid, html).groups()
+        ens = {r["zone_id"]: r for r in zrows if (r["species"], r["scenario"], r["model"], r["period"])
+               == (sp, scenario, "ensemble", period)}
+        want = sorted(ens, key=lambda z: -float(ens[z]["area_km2_constraint"]) / float(ens[z]["area_km2"]))
+        shown = [z for z, _c in trs]
+        assert shown == want[: len(shown)] and len(shown) == min(10, len(want)), tid
+        for z, cells in trs:
+            r = ens[z]
+            share = 100 * float(r["area_km2_constraint"]) / float(r["area_km2"])
+            assert number(cells["share_constraint"], "%") == pytest.approx(share, abs=0.051), (tid, z)
+
+
 # --- the report in a real browser -------------------------------------------------------------------------------
 
 class Chromium:
@@ -437,6 +524,40 @@ def test_report_in_headless_chromium(run, html, browser, tmp_path):
         assert im.size == (1280, 1600)
         grey = np.asarray(im.convert("L"), dtype=np.float64)
     assert grey.std() > 10.0, "the screenshot is blank"
+    assert browser.problems() == []
+
+
+LAYOUT_JS = """(() => {
+  const h = Array.from(document.querySelectorAll('h1, h2, h3'));
+  const config = document.getElementById('config');
+  const nav = document.querySelector('nav.toc');
+  window.scrollTo(0, document.body.scrollHeight);
+  const r = nav.getBoundingClientRect();
+  return {headings: h.slice(0, 2).map(e => [e.tagName, e.innerText, e.closest('section') ? e.closest('section').id : '']),
+          config_details: config ? config.tagName : '', config_open: config ? config.open : null,
+          config_text_shown: config ? config.querySelector('pre').checkVisibility() : null,
+          header: document.querySelector('header').innerText,
+          nav_position: getComputedStyle(nav).position, nav_top: r.top, nav_bottom: r.bottom,
+          scrolled: window.scrollY, view: window.innerHeight};
+})()"""
+
+
+def test_report_opens_on_the_results_in_headless_chromium(run, browser):
+    """The first heading after the title is the results; the config text is in a folded
+    <details>; the header names the run folder given to ``ceiling run --out`` (not the staging
+    folder); the table of contents stays in view at the end of the page."""
+    browser.open((run / REPORT_FILE).resolve().as_uri(), height=900)
+    got = browser.evaluate(LAYOUT_JS)
+    assert got["headings"][0][0] == "H1" and got["headings"][1][:1] == ["H2"], got["headings"]
+    assert got["headings"][1][2] == "results" and "Results" in got["headings"][1][1]
+    assert got["config_details"] == "DETAILS" and got["config_open"] is False and got["config_text_shown"] is False
+    assert str(run) in got["header"] and ".partial" not in got["header"]
+    assert got["nav_position"] == "sticky"
+    assert got["scrolled"] > 5 * got["view"]  # the page did scroll far
+    assert 0 <= got["nav_top"] < got["view"] and got["nav_bottom"] > 0, got
+    # opening the folded config shows its text
+    assert browser.evaluate("(() => { const d = document.getElementById('config'); d.open = true; "
+                            "return d.querySelector('pre').checkVisibility(); })()") is True
     assert browser.problems() == []
 
 

@@ -29,8 +29,8 @@ NETCDF_FILE = "ceiling.nc"
 SUMMARY_FILE = "summary.csv"
 TRANSITIONS_FILE = "transitions.csv"
 MANIFEST_FILE = "manifest.json"
-PRESENT_LAYERS = ("ceiling", "limiting", "novelty", "novel_factor", "extrapolated")
-FUTURE_LAYERS = ("ceiling", "change", "change_pct", "limiting", "zone", "switch", "novelty", "novel_factor", "extrapolated")
+PRESENT_LAYERS = ("ceiling", "limiting", "similarity", "least_similar", "extrapolated")
+FUTURE_LAYERS = ("ceiling", "change", "change_pct", "limiting", "zone", "switch", "similarity", "least_similar", "extrapolated")
 ENSEMBLE_LAYERS = ("median_ceiling", "mean_ceiling", "median_change", "mean_change", "change_min", "change_max",
                    "change_iqr", "agreement", "robustness", "zone", "limiting", "limiting_share")
 ENSEMBLE = "ensemble"  # the climate-model name under which ensemble maps are written

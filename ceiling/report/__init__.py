@@ -7,14 +7,14 @@ renders ``template.html.j2`` with Jinja2 (autoescaped). Every image is embedded 
 loads nothing else: no scripts, no external style sheets or fonts, and a content security
 policy that forbids any other source.
 
-Sections: what was run; the model; the maps and comparison sheets; the summary tables; the
-cautions; provenance (checksums).
+Sections, results first: what the run found (ceiling/report/results.py); the maps and
+comparison sheets; the summary tables; the model and its diagnostics; the cautions; then, folded
+(``<details>``), what was run (config, climates, inputs, versions) and provenance (checksums). A
+table of contents stays in view beside the page (CSS ``position: sticky``, no script).
 """
 
 from __future__ import annotations
 
-import base64
-import io
 import json
 import math
 import tomllib
@@ -26,7 +26,6 @@ from typing import Any
 import pandas as pd
 
 from .. import __version__
-from ..categories import ENSEMBLE_ZONES, ZONES
 from ..errors import InputFileError
 from ..outputs.atomic import atomic_write_text, sha256_file
 from ..outputs.names import (
@@ -35,23 +34,26 @@ from ..outputs.names import (
     MANIFEST_FILE,
     MODEL_FILE,
     SUMMARY_FILE,
+    TRANSITIONS_FILE,
     fit_panel_name,
 )
+from .figures import community_section, embed, figure, maps_section, overview_figures
+from .formatting import format_km2, format_percent, format_size, format_value, missing
+from .results import ZONES_FILE, RunTables, results_section
+from .tables import MAX_TABLE_ROWS, ensemble_table, future_table, generic_table, present_table, read_csv
 
 __all__ = ["REPORT_FILE", "build_report", "report_context", "render_report", "format_km2", "format_percent",
            "format_value", "CAUTIONS"]
 
 REPORT_FILE = "report.html"
 TEMPLATE = "template.html.j2"
-SCREEN_WIDTH = 1300  # embedded copies are reduced by the whole factor that brings them nearest this width
-MAX_TABLE_ROWS = 500  # longer optional tables (zones, community) are cut, saying so
 
 CAUTIONS = (
     "A ceiling is the potential upper limit of abundance that the climate factors allow (law of the "
     "minimum over the factors' upper boundaries). It is not a forecast of abundance: dispersal, land use, "
     "habitat, competitors, disease and chance keep real abundance below the ceiling in most places.",
     "Cells whose climate lies outside the range sampled by the survey (novel climate, MESS below 0) are "
-    "extrapolations; they are hatched on the novelty maps, and their share is given in the tables.",
+    "extrapolations; they are hatched on the similarity maps, and their share is given in the tables.",
     "Climate models disagree. The ensemble maps hatch the cells where too few models agree on the sign of "
     "the change, and the ensemble table gives the agreement; a change that only one model shows is weak evidence.",
     "The results need review by experts who know the species and the region before any use.",
@@ -60,117 +62,7 @@ CAUTIONS = (
 )
 
 
-# --- formatting (also used by the tests to know what the page shows) --------------------------------------
-
-def _missing(v: Any) -> bool:
-    """None, a blank string or NaN (a table's empty cell)."""
-    if v is None:
-        return True
-    if isinstance(v, str):
-        return not v.strip()
-    try:
-        return math.isnan(float(v))
-    except (TypeError, ValueError):
-        return False
-
-
-def format_km2(v: Any) -> str:
-    """Area in km2: whole km2 from 100 up, one decimal below (``12,345 km²``, ``3.4 km²``)."""
-    if _missing(v):
-        return "–"
-    x = float(v)
-    return f"{x:,.0f} km²" if abs(x) >= 100 else f"{x:,.1f} km²"
-
-
-def format_percent(share: Any) -> str:
-    """A share 0..1 as a percentage with one decimal (``12.3 %``)."""
-    if _missing(share):
-        return "–"
-    return f"{100.0 * float(share):.1f} %"
-
-
-def format_value(v: Any, digits: int = 2) -> str:
-    if _missing(v):
-        return "–"
-    return f"{float(v):,.{digits}f}"
-
-
-def _size(n: int) -> str:
-    for unit in ("bytes", "kB", "MB", "GB"):
-        if n < 1000 or unit == "GB":
-            return f"{n:,.0f} {unit}" if unit == "bytes" else f"{n:,.1f} {unit}"
-        n /= 1000.0
-    return f"{n} bytes"
-
-
-# --- images -----------------------------------------------------------------------------------------------
-
-def _data_uri(path: Path) -> str:
-    """A screen copy of a PNG (reduced by the whole factor that brings it nearest SCREEN_WIDTH
-    pixels across, 256-colour palette) as a ``data:image/png;base64`` URI."""
-    from PIL import Image
-
-    with Image.open(path) as im:
-        im = im.convert("RGB")
-        f = max(1, round(im.width / SCREEN_WIDTH))
-        if f > 1:
-            im = im.reduce(f)
-        im = im.quantize(256, method=Image.Quantize.FASTOCTREE)
-        buf = io.BytesIO()
-        im.save(buf, format="PNG")
-    return "data:image/png;base64," + base64.b64encode(buf.getvalue()).decode("ascii")
-
-
-def _figure(root: Path, rel: Path, title: str, alt: str | None = None) -> dict[str, Any] | None:
-    """A figure to embed (its data URI is filled in by :func:`_embed`), or None if the file is missing."""
-    p = root / rel
-    if not p.is_file():
-        return None
-    return {"title": title, "alt": alt or title, "uri": "", "file": rel.as_posix(), "path": p}
-
-
-def _figures_in(obj: Any):
-    if isinstance(obj, dict):
-        if "path" in obj and "uri" in obj:
-            yield obj
-        else:
-            for v in obj.values():
-                yield from _figures_in(v)
-    elif isinstance(obj, list | tuple):
-        for v in obj:
-            yield from _figures_in(v)
-
-
-def _embed(context: dict[str, Any]) -> None:
-    """Fill in the data URI of every figure of the context (a few worker processes for many)."""
-    import multiprocessing
-    import os
-    from concurrent.futures import ProcessPoolExecutor
-
-    figs = list(_figures_in(context))
-    paths = [f["path"] for f in figs]
-    cpus = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
-    n = min(cpus, 4, len(paths) // 8)
-    if n > 1 and "fork" in multiprocessing.get_all_start_methods():
-        with ProcessPoolExecutor(max_workers=n, mp_context=multiprocessing.get_context("fork")) as pool:
-            uris = list(pool.map(_data_uri, paths, chunksize=4))
-    else:
-        uris = [_data_uri(p) for p in paths]
-    for f, uri in zip(figs, uris):
-        f["uri"] = uri
-        del f["path"]
-
-
 # --- reading the run folder ---------------------------------------------------------------------------------
-
-def _read_csv(path: Path) -> pd.DataFrame:
-    if not path.is_file() or path.stat().st_size == 0:
-        return pd.DataFrame()
-    try:
-        return pd.read_csv(path, keep_default_na=False, na_values=[""], dtype={"model": str, "scenario": str, "period": str})
-    except pd.errors.EmptyDataError:
-        return pd.DataFrame()
-
 
 def _manifest(root: Path) -> dict[str, Any] | None:
     p = root / MANIFEST_FILE
@@ -221,110 +113,6 @@ NOVEL_RULES = {
 }
 
 
-# --- tables ----------------------------------------------------------------------------------------------------
-
-def _cell(col: str, text: str, *, num: bool = True) -> dict[str, Any]:
-    return {"col": col, "text": text, "num": num}
-
-
-def _row_key(r: Any) -> dict[str, str]:
-    return {"species": str(r["species"]), "scenario": str(r["scenario"]),
-            "model": "" if _missing(r.get("model")) else str(r["model"]), "period": str(r["period"])}
-
-
-def _present_table(summary: pd.DataFrame, factors: dict[str, list[str]]) -> dict[str, Any] | None:
-    rows = summary[summary["scenario"] == "present"]
-    if rows.empty:
-        return None
-    allf = list(dict.fromkeys(f for fs in factors.values() for f in fs))
-    head = ["species", "period", "area", "mean ceiling", "novel climate", "novel share",
-            *[f"limited by {f}" for f in allf]]
-    out = []
-    for _, r in rows.iterrows():
-        cells = [_cell("species", str(r["species"]), num=False), _cell("period", str(r["period"]), num=False),
-                 _cell("area_km2", format_km2(r.get("area_km2"))),
-                 _cell("mean_ceiling_now", format_value(r.get("mean_ceiling_now"))),
-                 _cell("area_km2_novel", format_km2(r.get("area_km2_novel"))),
-                 _cell("share_novel", format_percent(r.get("share_novel")))]
-        cells += [_cell(f"area_km2_limited_now_{f}", format_km2(r.get(f"area_km2_limited_now_{f}"))) for f in allf]
-        out.append({"key": _row_key(r), "cells": cells})
-    return {"id": "table-present", "caption": "Present climate: area, mean ceiling (survey abundance units), "
-            "novel climate and the area limited by each factor", "head": head, "rows": out}
-
-
-def _future_table(summary: pd.DataFrame) -> dict[str, Any] | None:
-    rows = summary[(summary["scenario"] != "present") & (summary["model"] != ENSEMBLE)]
-    if rows.empty:
-        return None
-    head = ["species", "scenario", "climate model", "period", *[z.name for z in ZONES], "novel share",
-            "mean change", "median change"]
-    out = []
-    for _, r in rows.iterrows():
-        area = r.get("area_km2")
-        share = r.get("share_novel")
-        if _missing(share) and not _missing(r.get("area_km2_novel")) and area:
-            share = float(r["area_km2_novel"]) / float(area)
-        cells = [_cell("species", str(r["species"]), num=False), _cell("scenario", str(r["scenario"]), num=False),
-                 _cell("model", str(r["model"]), num=False), _cell("period", str(r["period"]), num=False)]
-        cells += [_cell(f"area_km2_{z.name}", format_km2(r.get(f"area_km2_{z.name}"))) for z in ZONES]
-        cells += [_cell("share_novel", format_percent(share)),
-                  _cell("mean_change", format_value(r.get("mean_change"))),
-                  _cell("median_change", format_value(r.get("median_change")))]
-        out.append({"key": _row_key(r), "cells": cells})
-    return {"id": "table-futures", "caption": "Each scenario, climate model and period: area of each zone class, "
-            "share of novel climate, and the area-weighted mean and median change of the ceiling "
-            "(survey abundance units)", "head": head, "rows": out}
-
-
-def _ensemble_table(summary: pd.DataFrame) -> dict[str, Any] | None:
-    rows = summary[summary["model"] == ENSEMBLE]
-    if rows.empty:
-        return None
-    head = ["species", "scenario", "period", "climate models", *[z.name for z in ENSEMBLE_ZONES],
-            "robust area", "robust share", "mean agreement"]
-    out = []
-    for _, r in rows.iterrows():
-        area = r.get("area_km2")
-        robust = r.get("area_km2_robust")
-        share = float(robust) / float(area) if not _missing(robust) and not _missing(area) and float(area) else float("nan")
-        n = r.get("n_models")
-        cells = [_cell("species", str(r["species"]), num=False), _cell("scenario", str(r["scenario"]), num=False),
-                 _cell("period", str(r["period"]), num=False),
-                 _cell("n_models", "–" if _missing(n) else f"{int(float(n))}")]
-        cells += [_cell(f"area_km2_{z.name}", format_km2(r.get(f"area_km2_{z.name}"))) for z in ENSEMBLE_ZONES]
-        cells += [_cell("area_km2_robust", format_km2(robust)), _cell("share_robust", format_percent(share)),
-                  _cell("mean_agreement", format_percent(r.get("mean_agreement")))]
-        out.append({"key": _row_key(r), "cells": cells})
-    return {"id": "table-ensemble", "caption": "Ensembles: area of each zone class, area where enough climate models "
-            "agree on the sign of the change (robust), and the area-weighted mean agreement", "head": head, "rows": out}
-
-
-def _generic_table(df: pd.DataFrame, table_id: str, caption: str) -> dict[str, Any]:
-    """Any table (zones.csv, community tables): numbers formatted by their column names."""
-    out = []
-    for _, r in df.iterrows():
-        cells = []
-        for c in df.columns:
-            v = r[c]
-            name = str(c).lower()
-            if isinstance(v, str):
-                cells.append(_cell(str(c), v, num=False))
-            elif _missing(v):
-                cells.append(_cell(str(c), "–"))
-            elif "km2" in name:
-                cells.append(_cell(str(c), format_km2(v)))
-            elif "share" in name or name.startswith("p_") or "fraction" in name:
-                cells.append(_cell(str(c), format_percent(v)))
-            elif "pct" in name or "percent" in name:
-                cells.append(_cell(str(c), "–" if _missing(v) else f"{float(v):.1f} %"))
-            elif isinstance(v, int | bool) or (isinstance(v, float) and v.is_integer() and abs(v) < 1e15):
-                cells.append(_cell(str(c), f"{int(v):,}" if not isinstance(v, bool) else str(v)))
-            else:
-                cells.append(_cell(str(c), format_value(v)))
-        out.append({"key": {}, "cells": cells})
-    return {"id": table_id, "caption": caption, "head": [str(c) for c in df.columns], "rows": out}
-
-
 # --- model section ----------------------------------------------------------------------------------------------
 
 LIMITING = "acts as a limiting factor"  # the verdict of diagnostics.csv for a factor that acts as a limit
@@ -334,7 +122,7 @@ def _in_minimum(r: Any) -> bool:
     v = r.get("in_minimum", True)
     if isinstance(v, str):
         return v.strip().lower() not in ("false", "0", "no")
-    return True if _missing(v) else bool(v)
+    return True if missing(v) else bool(v)
 
 
 def _model_section(root: Path, diag: pd.DataFrame, model_doc: dict[str, Any]) -> list[dict[str, Any]]:
@@ -354,10 +142,10 @@ def _model_section(root: Path, diag: pd.DataFrame, model_doc: dict[str, Any]) ->
                 "peak": format_value(r.get("peak_ceiling")),
                 "share_above": f"{format_percent(r.get('share_above'))} (expected {format_percent(r.get('expected_share_above'))})",
                 "pseudo_r1": format_value(r.get("pseudo_r1"), 3),
-                "wedge_p": "–" if _missing(r.get("wedge_p")) else f"{float(r['wedge_p']):.3g}",
+                "wedge_p": "–" if missing(r.get("wedge_p")) else f"{float(r['wedge_p']):.3g}",
                 "verdict": r.get("verdict", ""),
                 "in_minimum": _in_minimum(r),
-                "screened_reason": "" if _missing(r.get("screened_reason")) else str(r.get("screened_reason")),
+                "screened_reason": "" if missing(r.get("screened_reason")) else str(r.get("screened_reason")),
                 "limiting_share": format_percent(r.get("limiting_share")) if "limiting_share" in r else "",
             })
         limits = [r["factor"] for r in rows if r["verdict"] == LIMITING]
@@ -369,79 +157,10 @@ def _model_section(root: Path, diag: pd.DataFrame, model_doc: dict[str, Any]) ->
             "n_points": sd.get("n_points", ""), "dropped": sd.get("dropped", {}), "factors": rows,
             "limits": limits, "others": others, "screened": screened,
             "has_share": any(r["limiting_share"] not in ("", "–") for r in rows),
-            "fit_figure": _figure(root, fit_panel_name(sp), f"Ceiling fits for {sp}",
+            "fit_figure": figure(root, fit_panel_name(sp), f"Ceiling fits for {sp}",
                                   f"Survey points, fitted ceiling and median line of each factor for {sp}"),
         })
     return out
-
-
-# --- maps section ------------------------------------------------------------------------------------------------
-
-def _maps_section(root: Path, info: Any) -> list[dict[str, Any]]:
-    from .. import maps
-
-    out = []
-    for sp in info.species:
-        present = info.present(sp)
-        block: dict[str, Any] = {"name": sp, "present": None, "comparisons": [], "ensembles": [], "limiting": [],
-                                 "uncertainty": [], "climates": []}
-        if present is not None:
-            block["present"] = _figure(root, maps.climate_sheet_name(sp, present), maps.climate_title(sp, present),
-                                       f"Maps of the present ceiling, limiting factor and novelty for {sp}")
-        models = list(dict.fromkeys(k[1] for k in info.climates[sp] if k[0] != "present"))
-        for model in [m for m in models if m != ENSEMBLE] + ([ENSEMBLE] if ENSEMBLE in models else []):
-            for layer in ("change", "zone"):
-                who = "ensemble of the climate models" if model == ENSEMBLE else f"climate model {model}"
-                what = "change of the ceiling" if layer == "change" else "zone of change"
-                f = _figure(root, maps.comparison_sheet_name(sp, model, layer), f"{sp}: {what}, {who}",
-                            f"{what} for each scenario (across) and period (down), {who}")
-                if f:
-                    block["comparisons"].append(f)
-        for key in info.ensembles(sp):
-            f = _figure(root, maps.climate_sheet_name(sp, key), maps.climate_title(sp, key))
-            if f:
-                block["ensembles"].append(f)
-        for kind, title in (("areas", "area limited by each factor"), ("switch", "limiting factor now and later")):
-            f = _figure(root, maps.limiting_figure_name(sp, kind), f"{sp}: {title}")
-            if f:
-                block["limiting"].append(f)
-        if present is not None:
-            f = _figure(root, maps.uncertainty_sheet_name(sp, present), maps.climate_title(sp, present) + ": fit uncertainty")
-            if f:
-                block["uncertainty"].append(f)
-        for model in [m for m in models if m != ENSEMBLE]:
-            for layer in maps.COMPARED_PROBABILITIES:
-                what = maps.TITLES[layer].lower()
-                f = _figure(root, maps.comparison_sheet_name(sp, model, layer), f"{sp}: {what}, climate model {model}",
-                            f"{what} (share of bootstrap replicates) for each scenario and period, climate model {model}")
-                if f:
-                    block["uncertainty"].append(f)
-        for key in info.futures(sp):
-            rel = maps.climate_sheet_name(sp, key)
-            if (root / rel).is_file():
-                block["climates"].append({"title": maps.climate_title(sp, key), "file": rel.as_posix()})
-        out.append(block)
-    return out
-
-
-def _community(root: Path) -> dict[str, Any] | None:
-    from .. import maps
-
-    d = root / "community"
-    if not d.is_dir():
-        return None
-    figs = []
-    for rel in maps.community_climates(root):
-        parts = rel.parts[1:]
-        title = "Community: present climate" if parts[:1] == ("present",) else "Community: " + ", ".join(
-            f"{k} {v}" for k, v in zip(("scenario", "climate model", "period"), parts))
-        f = _figure(root, maps.community_figure_name(rel), title)
-        if f:
-            figs.append(f)
-    csvs = sorted(d.rglob("*.csv")) + ([root / "community.csv"] if (root / "community.csv").is_file() else [])
-    tables = [_generic_table(_read_csv(c).head(MAX_TABLE_ROWS), f"table-community-{i}", c.relative_to(root).as_posix())
-              for i, c in enumerate(csvs)]
-    return {"figures": figs, "tables": [t for t in tables if t["rows"]]}
 
 
 # --- provenance ----------------------------------------------------------------------------------------------------
@@ -459,7 +178,7 @@ def _provenance(root: Path, manifest: dict[str, Any] | None, report_path: Path) 
                 status = "missing"
             else:
                 status = "matches" if sha256_file(p) == e.get("sha256") else "changed since the manifest"
-            entries.append({"path": e["path"], "size": _size(int(e.get("size", 0))), "sha256": e.get("sha256", ""),
+            entries.append({"path": e["path"], "size": format_size(int(e.get("size", 0))), "sha256": e.get("sha256", ""),
                             "status": status})
         source = f"{MANIFEST_FILE}, checked against the files when this report was built"
     else:
@@ -467,7 +186,7 @@ def _provenance(root: Path, manifest: dict[str, Any] | None, report_path: Path) 
             rel = p.relative_to(root)
             if p.resolve() == report_path.resolve() or rel.name.startswith("."):
                 continue
-            entries.append({"path": rel.as_posix(), "size": _size(p.stat().st_size), "sha256": sha256_file(p),
+            entries.append({"path": rel.as_posix(), "size": format_size(p.stat().st_size), "sha256": sha256_file(p),
                             "status": "computed now"})
         source = (f"computed from the files when this report was built; {MANIFEST_FILE} (written after the report) "
                   "lists every input and output, this report included")
@@ -476,7 +195,7 @@ def _provenance(root: Path, manifest: dict[str, Any] | None, report_path: Path) 
 
 def _inputs(manifest: dict[str, Any] | None, inputs: Iterable[Path]) -> list[dict[str, str]]:
     if manifest is not None:
-        return [{"path": e["path"], "size": _size(int(e.get("size", 0))), "sha256": e.get("sha256", "")}
+        return [{"path": e["path"], "size": format_size(int(e.get("size", 0))), "sha256": e.get("sha256", "")}
                 for e in manifest.get("inputs", [])]
     out, seen = [], set()
     for p in inputs:
@@ -485,14 +204,23 @@ def _inputs(manifest: dict[str, Any] | None, inputs: Iterable[Path]) -> list[dic
         if key in seen or not p.is_file():
             continue
         seen.add(key)
-        out.append({"path": str(p), "size": _size(p.stat().st_size), "sha256": ""})
+        out.append({"path": str(p), "size": format_size(p.stat().st_size), "sha256": ""})
     return out
 
 
 # --- the whole report ----------------------------------------------------------------------------------------------
 
-def report_context(run_dir: str | Path, *, config: Path | None = None, inputs: Iterable[Path] = ()) -> dict[str, Any]:
-    """Everything the template shows, as plain data."""
+def _zones_table(zdf: pd.DataFrame) -> dict[str, Any] | None:
+    shown = zdf.head(MAX_TABLE_ROWS)
+    caption = f"{ZONES_FILE}: every zone, species and climate" if len(zdf) <= MAX_TABLE_ROWS else \
+        f"{ZONES_FILE}: the first {MAX_TABLE_ROWS} of {len(zdf):,} rows (the whole table is in {ZONES_FILE})"
+    return generic_table(shown, "table-zones", caption) if len(shown) else None
+
+
+def report_context(run_dir: str | Path, *, config: Path | None = None, inputs: Iterable[Path] = (),
+                   folder: str | Path | None = None) -> dict[str, Any]:
+    """Everything the template shows, as plain data. ``folder`` is the run folder as the user
+    named it (the report may be built in a staging folder of another name)."""
     from ..maps import run_info
     from ..outputs.manifest import package_versions
 
@@ -501,23 +229,20 @@ def report_context(run_dir: str | Path, *, config: Path | None = None, inputs: I
         raise InputFileError(f"{root} is not a run folder: it has no {SUMMARY_FILE}")
     manifest = _manifest(root)
     info = run_info(root)
-    summary = _read_csv(root / SUMMARY_FILE)
-    diag = _read_csv(root / DIAGNOSTICS_FILE)
+    summary = read_csv(root / SUMMARY_FILE)
+    diag = read_csv(root / DIAGNOSTICS_FILE)
     model_doc = json.loads((root / MODEL_FILE).read_text(encoding="utf-8")) if (root / MODEL_FILE).is_file() else {}
     cfg = _config_block(manifest, config)
     packages = (manifest or {}).get("packages") or package_versions()
     climates = [{"scenario": k[0], "model": k[1], "period": k[2]}
                 for k in dict.fromkeys(k for sp in info.species for k in info.climates[sp])]
     factors = {sp: list(fs) for sp, fs in info.factors.items()}
-    tables = [t for t in (_present_table(summary, factors), _future_table(summary), _ensemble_table(summary)) if t]
-    zones_csv = root / "zones.csv"
-    zones = None
-    if zones_csv.is_file():
-        zdf = _read_csv(zones_csv)
-        shown = zdf.head(MAX_TABLE_ROWS)
-        caption = "zones.csv: every zone, species and climate" if len(zdf) <= MAX_TABLE_ROWS else \
-            f"zones.csv: the first {MAX_TABLE_ROWS} of {len(zdf):,} rows (the whole table is in zones.csv)"
-        zones = _generic_table(shown, "table-zones", caption) if len(shown) else None
+    tables = [t for t in (present_table(summary, factors), future_table(summary), ensemble_table(summary)) if t]
+    zdf = read_csv(root / ZONES_FILE)
+    overview = overview_figures(root, info)
+    labels = {sp: {f["name"]: f.get("label") or "" for f in d.get("factors", [])}
+              for sp, d in model_doc.get("species", {}).items()}
+    results = results_section(RunTables(summary, read_csv(root / TRANSITIONS_FILE), zdf, labels), overview)
     max_novel = float(pd.to_numeric(summary.get("share_novel"), errors="coerce").max()) if "share_novel" in summary else float("nan")
     ens = summary[summary["model"] == ENSEMBLE] if "model" in summary else summary
     min_agree = float(pd.to_numeric(ens.get("mean_agreement"), errors="coerce").min()) if not ens.empty else float("nan")
@@ -525,7 +250,8 @@ def report_context(run_dir: str | Path, *, config: Path | None = None, inputs: I
     return {
         "title": f"Ceiling run report: {_run_name(cfg, root)}",
         "version": __version__,
-        "folder": root.name,
+        "folder": str(folder) if folder is not None else root.name,
+        "results": results,
         "config": cfg,
         "inputs": _inputs(manifest, inputs),
         "packages": sorted(packages.items(), key=lambda kv: kv[0].lower()),
@@ -535,10 +261,10 @@ def report_context(run_dir: str | Path, *, config: Path | None = None, inputs: I
         "warnings": ((manifest or {}).get("warnings") or {}).get("messages", []),
         "has_manifest": manifest is not None,
         "species": _model_section(root, diag, model_doc),
-        "maps": _maps_section(root, info),
-        "community": _community(root),
+        "maps": maps_section(root, info, {f["file"] for f in overview.values() if f}),
+        "community": community_section(root),
         "tables": tables,
-        "zones": zones,
+        "zones": _zones_table(zdf),
         "zones_gpkg": (root / "zones.gpkg").is_file(),
         "cautions": CAUTIONS,
         "novel_rule": rule,
@@ -557,16 +283,18 @@ def render_report(context: dict[str, Any]) -> str:
     return template.render(**context)
 
 
-def build_report(run_dir: str | Path, *, config: Path | None = None, inputs: Iterable[Path] = ()) -> Path:
+def build_report(run_dir: str | Path, *, config: Path | None = None, inputs: Iterable[Path] = (),
+                 folder: str | Path | None = None) -> Path:
     """Write ``run_dir/report.html`` (atomically) and return its path.
 
     ``config`` and ``inputs`` describe the run while its manifest is not written yet (``ceiling
     run`` builds the report just before the manifest); once ``manifest.json`` exists, it is the
-    source of the config text, inputs, versions and checksums.
+    source of the config text, inputs, versions and checksums. ``folder`` is the run folder's
+    name as the user gave it, shown in the header (default: ``run_dir``'s name).
     """
     root = Path(run_dir)
     path = root / REPORT_FILE
-    ctx = report_context(root, config=config, inputs=inputs)
-    _embed(ctx)
+    ctx = report_context(root, config=config, inputs=inputs, folder=folder)
+    embed(ctx)
     ctx["provenance"] = _provenance(root, _manifest(root), path)
     return atomic_write_text(path, render_report(ctx))

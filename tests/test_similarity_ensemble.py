@@ -2,7 +2,7 @@
 
 MESS values below were worked by hand from the formula of Elith, Kearney & Phillips (2010,
 Methods in Ecology and Evolution 1:330-342); the formula itself is quoted from memory of the
-paper (as written in ceiling/novelty.py): with f the percentage of reference values strictly
+paper (as written in ceiling/mess.py): with f the percentage of reference values strictly
 below p, S = 100 (p - min)/(max - min) if f = 0; 2f if 0 < f <= 50; 2(100 - f) if
 50 <= f < 100; 100 (max - p)/(max - min) if f = 100; MESS = min over factors.
 
@@ -24,7 +24,7 @@ from projection_helpers import SmallCase, assert_refused, cli, read_code, read_f
 from ceiling.ensemble import LOW_AGREEMENT, ROBUST, UNCERTAIN, agreement_kernel, ensemble_kernel
 from ceiling.errors import DataError
 from ceiling.kernels import CONSTRAINT, RELEASE
-from ceiling.novelty import check_reference, mess_kernel, similarity
+from ceiling.mess import check_reference, mess_kernel, similarity
 
 REF = np.arange(1.0, 11.0)  # {1, ..., 10}
 
@@ -46,7 +46,7 @@ def test_similarity_hand_worked_values(p, expected):
     assert similarity(np.array([p]), REF)[0] == pytest.approx(expected, abs=1e-9)
 
 
-def test_mess_two_factors_and_most_dissimilar_factor():
+def test_mess_two_factors_and_least_similar_factor():
     # Source: hand-worked from the MESS formula (Elith et al. 2010), quoted from memory:
     # A = {1..10}, B = {0, 10, ..., 90}, point (3, 95): S_A = 40, S_B = 100 (90 - 95)/90 = -5.556
     b = np.arange(0.0, 100.0, 10.0)
@@ -125,7 +125,7 @@ def test_mask_rule_sets_novel_cells_to_nodata_and_records_the_rule(small, tmp_pa
     model.write_text(json.dumps(doc))
     held = _project(small.config("hold.toml"), model, tmp_path / "hold")
     masked = _project(small.config("mask.toml", projection={"novel": "mask"}), model, tmp_path / "mask")
-    nov = read_float(held / "sp1" / "present" / "novelty.tif")
+    nov = read_float(held / "sp1" / "present" / "similarity.tif")
     ext = read_code(held / "sp1" / "present" / "extrapolated.tif")
     assert (ext[np.isfinite(nov)] == (nov[np.isfinite(nov)] < 0)).all()
     assert (nov < 0).sum() > 0

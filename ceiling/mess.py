@@ -1,5 +1,8 @@
 """Novel climates: the multivariate environmental similarity surface (MESS).
 
+The run writes it as the layer ``similarity`` (MESS, %) beside ``least_similar`` (the factor with
+the lowest similarity) and ``extrapolated`` (1 where MESS < 0: novel climate).
+
 For each factor, with f the percentage of reference values strictly below the cell's value p,
 and min / max the reference range (Elith, Kearney & Phillips 2010, Methods in Ecology and
 Evolution 1:330-342):
@@ -9,7 +12,7 @@ Evolution 1:330-342):
     S = 2 (100 - f)                   if 50 <= f < 100
     S = 100 (max - p) / (max - min)   if f = 100
 
-MESS is the minimum of S over factors and the most dissimilar factor is the one that attains it
+MESS is the minimum of S over factors and the least similar factor is the one that attains it
 (ties to the first in factor order). Negative values mean the cell lies outside the sampled range
 of at least one factor. The reference sample is the factor values at the survey points used in
 the fit; the percentages come from a binary search in the sorted sample (``searchsorted``), never
@@ -57,7 +60,7 @@ def similarity(p: np.ndarray, ref_sorted: np.ndarray) -> np.ndarray:
 
 
 def mess_kernel(values: Sequence[np.ndarray], refs: Sequence[np.ndarray]) -> tuple[np.ndarray, np.ndarray]:
-    """(MESS, most dissimilar factor code) for stacked factor values; NaN / 255 where any is NaN."""
+    """(MESS, least similar factor code) for stacked factor values; NaN / 255 where any is NaN."""
     s = np.stack([similarity(v, r) for v, r in zip(values, refs)])
     bad = np.isnan(s).any(axis=0)
     filled = np.where(np.isnan(s), np.inf, s)
