@@ -427,6 +427,7 @@ def project_to_folder(
     from .zones import load_zones_config
     zones_in, community_opts = load_zones_config(cfg), community_options(cfg)
     inputs = run_inputs(cfg, cl, model_path, zones_in.source if zones_in is not None else None)
+    given = Path(out)  # the folder as the user named it (the report's header), before links are followed
     out = check_output_folder(out, overwrite=overwrite, inputs=inputs + ([Path(cfg.source)] if cfg.source else []))
     # the inputs' checksums for the manifest, read beside the projection rather than after it
     checksums = Prefetch(dict.fromkeys(inputs))
@@ -488,7 +489,7 @@ def _project_to_folder(cfg: RunConfig, out: Path, cl: list[Climate], inputs: lis
         from .report import build_report
         t_report = time.perf_counter()
         n_figures = len(make_figures(stage, workers=threads))  # --threads caps the figure processes too
-        build_report(stage, config=cfg.source, inputs=inputs, folder=out)  # named as given, not the staging folder
+        build_report(stage, config=cfg.source, inputs=inputs, folder=given)  # named as given, not the staging folder
         run.timings["figures_and_report"] = time.perf_counter() - t_report
         if progress:
             progress(f"wrote {n_figures} figures and report.html in {run.timings['figures_and_report']:.1f} s")
