@@ -63,8 +63,10 @@ class FactorConfig(_Section):
     column: str | None = None
     units: str | None = None
     label: str | None = None
-    basis: Basis = "quadratic"
-    df: int = Field(default=4, ge=1, le=20)
+    # natural cubic splines with 3 degrees of freedom (kept concave by the joint fit's shape
+    # rule): chosen on the virtual-species suite (BENCHMARKS.md, "Recovery")
+    basis: Basis = "spline"
+    df: int = Field(default=3, ge=1, le=20)
     estimator: Estimator = "quantile"
     bins: int = Field(default=10, ge=3, le=200)
 

@@ -22,13 +22,14 @@ from scipy.stats import spearmanr
 
 from ceiling.boundary import make_basis
 from ceiling.boundary.diagnostics import wedge_test
-from ceiling.config import FitConfig
+from ceiling.config import FactorConfig, FitConfig
 from ceiling.fitting import fit_options
 from ceiling.model import CeilingModel, FactorSpec, fit
 
 __all__ = ["Candidate", "CANDIDATES", "candidate"]
 
 TAU = 0.95
+_FACTOR = FactorConfig(name="f", column="f")  # a factor's defaults
 
 
 @dataclass(frozen=True)
@@ -71,7 +72,8 @@ def _previous(samples: Any) -> CeilingModel:
 
 CANDIDATES: dict[str, Candidate] = {
     c.name: c for c in (
-        Candidate("defaults", "defaults (a config without [fit])", fit_options(FitConfig())),
+        Candidate("defaults", "defaults (a config without [fit] and without basis / df)", fit_options(FitConfig()),
+                  basis=(_FACTOR.basis, _FACTOR.df)),
         Candidate("plain", "plain: per-factor quadratic, tau 0.95, all factors",
                   dict(tau=TAU, method="per_factor", screen=False, wedge_replicates=0)),
         Candidate("joint_all", "joint fit, every factor, no screening",
