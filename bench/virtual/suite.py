@@ -71,7 +71,7 @@ def run_task(task: tuple[int, int, tuple[str, ...]]) -> list[dict]:
         left_out = [f.factor for f in model.screened]
         rows.append({"family": sc.family, "scenario": sc.name, "seed": seed, "candidate": name,
                      "sites": int(train.n), "seconds": seconds, "left_out": ",".join(left_out),
-                     "edgeless": ",".join(case.truth.edgeless), **s.to_dict()})
+                     "edgeless_factors": ",".join(case.truth.edgeless), **s.to_dict()})
     return rows
 
 
