@@ -252,8 +252,7 @@ def _switch_names(codes: np.ndarray, demo, species: str | None) -> np.ndarray:
     (None) of the factors any species uses, in config order (the NetCDF's list)."""
     models = list(load_models(demo / "model.json"))
     if species is None:
-        order = ["tmax_warm", "tmin_cold", "precip", "moisture"]  # configs/demo.toml's [[factors]]
-        names = [f for f in order if any(f in m.factor_names for m in models)]
+        names = [f for f in FACTORS if any(f in m.factor_names for m in models)]
     else:
         names = next(m for m in models if m.species == species).factor_names
     k = len(names)
