@@ -2,7 +2,8 @@
 
     python -m bench                      # full sizes (13-26 minutes on 2 cores); or python bench/run.py
     python -m bench --quick              # small sizes, a smoke run (a few minutes)
-    python -m bench --only kernel,e2e    # a subset: kernel, e2e, naive, memory, parallel, fit, scale
+    python -m bench --only kernel,e2e    # a subset: kernel, e2e, naive, memory, parallel, fit, scale, recovery
+    python -m bench --only recovery      # the virtual-species suite (bench/virtual/): defaults vs the plain fit
     python -m bench --work DIR           # keep the generated inputs in DIR (reused when present)
     python -m bench --json FILE          # also write the results table as JSON
 
@@ -417,10 +418,25 @@ def machine() -> str:
             f"{os.getloadavg()[0]:.2f}")
 
 
+def bench_recovery(quick: bool) -> None:
+    """The virtual-species suite: the defaults against the plain per-factor fit on every family."""
+    from .virtual.suite import recovery
+
+    print("\n== recovery: virtual species (bench/virtual/), defaults vs plain per-factor fit", flush=True)
+    t0 = time.perf_counter()
+    verdicts = recovery(quick=quick)
+    wall = time.perf_counter() - t0
+    for name, (figure, ok) in verdicts.items():
+        record(f"recovery {name}", figure, "plain per-factor quadratic, tau 0.95", None,
+               "within 0.01 of plain or better" if name != "median" else "better than plain", ok,
+               "python -m bench --only recovery")
+    print(f"  recovery suite: {wall:.0f} s", flush=True)
+
+
 def main(argv: list[str] | None = None) -> None:
     ap = argparse.ArgumentParser(prog="python -m bench", description=__doc__.splitlines()[0])
     ap.add_argument("--quick", action="store_true", help="small sizes: a smoke run of every benchmark")
-    ap.add_argument("--only", default="kernel,e2e,naive,memory,parallel,fit,scale")
+    ap.add_argument("--only", default="kernel,e2e,naive,memory,parallel,fit,scale,recovery")
     ap.add_argument("--work", type=Path, default=None, help="keep the generated inputs here (reused when present)")
     ap.add_argument("--json", type=Path, default=None, help="write the results table here")
     a = ap.parse_args(argv)
@@ -445,6 +461,8 @@ def main(argv: list[str] | None = None) -> None:
             bench_fit(*size["fit"])
         if "scale" in only:
             bench_scale(work, a.quick)
+        if "recovery" in only:
+            bench_recovery(a.quick)
     finally:
         if a.work is None:
             shutil.rmtree(work, ignore_errors=True)

@@ -67,8 +67,10 @@ class FactorConfig(_Section):
     column: str | None = None
     units: str | None = None
     label: str | None = None
-    basis: Basis = "quadratic"
-    df: int = Field(default=4, ge=1, le=20)
+    # natural cubic splines with 3 degrees of freedom (kept concave by the joint fit's shape
+    # rule): chosen on the virtual-species suite (BENCHMARKS.md, "Recovery")
+    basis: Basis = "spline"
+    df: int = Field(default=3, ge=1, le=20)
     estimator: Estimator = "quantile"
     bins: int = Field(default=10, ge=3, le=200)
 
@@ -95,15 +97,19 @@ class FitConfig(_Section):
     bootstrap: int = Field(default=0, le=100_000)
     bootstrap_block: float | None = None
     bootstrap_seed: int = 0
-    # factor screening (ceiling.model.screen_factors): leave factors without a distinct upper
-    # edge, and the less clear of two near-duplicate factors, out of the minimum
+    # factor screening (ceiling.screening): leave out of the minimum a factor without a distinct
+    # upper edge; correlation alone never leaves a factor out. edge_test: "both" (the
+    # block-bootstrap wedge test finds no edge and blocked cross-validation finds the held-out
+    # loss no worse without it), "cv" (blocked cross-validation alone) or "wedge" (the wedge test alone)
     screen: bool = True
+    edge_test: Literal["both", "cv", "wedge"] = "both"
     keep: list[str] = Field(default_factory=list)
     drop: list[str] = Field(default_factory=list)
-    duplicate_threshold: float = Field(default=0.9, gt=0, le=1)
     # how the curves are chosen: each on its own, or together under the minimum (ceiling.joint)
     method: Literal["per_factor", "joint"] = "joint"
     joint_starts: int = Field(default=3, ge=1, le=50)
+    # shape rule of the joint fit's curves (ceiling.boundary.shapes): "concave" or "free"
+    shape: Literal["concave", "free"] = "concave"
     # model selection by spatially blocked cross-validation (ceiling.selection)
     select: list[Literal["basis", "tau", "transform"]] = Field(default_factory=list)
     cv_block: float | None = None

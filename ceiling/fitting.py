@@ -17,9 +17,10 @@ import numpy as np
 import rasterio
 
 from . import __version__
-from .config import RunConfig
-from .errors import CeilingWarning, DataError, InputFileError
+from .config import FitConfig, RunConfig
+from .errors import CeilingError, CeilingWarning, DataError, InputFileError
 from .figures import fit_figure, fit_panel
+from .grids import layer_reader, template_grid
 from .model import CeilingModel, FactorSpec, ModelSet, fit
 from .outputs.atomic import atomic_write_text
 from .outputs.folder import check_output_folder, staged_folder
@@ -32,13 +33,17 @@ from .outputs.names import (
     path_parts,
 )
 from .samples import Samples, load_samples
-from .scenarios import check_sections
+from .scenarios import check_sections, climates
 from .uncertainty import bootstrap_model
 
 SELECTION_FILE = "selection.csv"
 
 __all__ = ["FitRun", "fit_config", "write_fit", "fit_to_folder", "factor_specs", "config_inputs", "check_species_names",
-           "with_companions"]
+           "with_companions", "fit_options", "future_samples"]
+
+# the cells of each future sampled for the fit's decoupling note: the whole grid when it is
+# small, else WINDOWS seeded windows of WINDOW x WINDOW cells (a few reads per layer)
+WINDOWS, WINDOW = 16, 64
 
 
 @dataclass(frozen=True)
@@ -128,6 +133,62 @@ def with_companions(paths: list[Path]) -> list[Path]:
     return out
 
 
+def fit_options(fit_cfg: FitConfig) -> dict[str, Any]:
+    """The keyword arguments of :func:`ceiling.model.fit` that a ``[fit]`` section sets."""
+    return dict(
+        tau=fit_cfg.tau, transform=fit_cfg.transform, outside=fit_cfg.outside,
+        wedge_replicates=fit_cfg.wedge_replicates, wedge_alpha=fit_cfg.wedge_alpha, seed=fit_cfg.seed,
+        screen=fit_cfg.screen, keep=tuple(fit_cfg.keep), drop=tuple(fit_cfg.drop), method=fit_cfg.method,
+        joint_starts=fit_cfg.joint_starts, cv_folds=fit_cfg.cv_folds, cv_block=fit_cfg.cv_block,
+        shape=fit_cfg.shape, edge_test=fit_cfg.edge_test,
+    )
+
+
+def _windows(shape: tuple[int, int], seed: int) -> list[tuple[slice, slice]]:
+    h, w = shape
+    if h * w <= WINDOWS * WINDOW * WINDOW:
+        return [(slice(0, h), slice(0, w))]
+    rng = np.random.default_rng(seed)
+    hh, ww = min(WINDOW, h), min(WINDOW, w)
+    return [(slice(r, r + hh), slice(c, c + ww))
+            for r, c in zip(rng.integers(0, h - hh + 1, WINDOWS), rng.integers(0, w - ww + 1, WINDOWS))]
+
+
+def future_samples(cfg: RunConfig, names: list[str], *, seed: int = 0) -> dict[str, dict[str, np.ndarray]]:
+    """Factor values at a sample of cells of every future of ``cfg``: {climate label: {factor: values}}.
+
+    The cells are those of the present template grid (the first factor's present layer): all
+    of them on a small grid, else seeded windows; each future's layers are read on that grid
+    (warped when they lie on another) in their own units, which is enough for rank
+    correlations. The fit uses them to say when two factors that move together at the survey
+    sites part ways in the future (:mod:`ceiling.screening`).
+    """
+    if not cfg.futures or not names:
+        return {}
+    cl = climates(cfg)
+    tpl = template_grid(cl[0].layers[names[0]], factor=names[0])
+    wins = _windows(tpl.shape, seed)
+    out = {}
+    for c in cl[1:]:
+        if c.series is not None:  # raw climate-model series: no factor layers until derived in the run
+            continue
+        vals = {}
+        for f in names:
+            rd = layer_reader(c.layers[f], tpl, factor=f, units=None, resampling="nearest")
+            vals[f] = np.concatenate([np.asarray(rd[r, q], dtype=np.float64).ravel() for r, q in wins])
+        out[c.label] = vals
+    return out
+
+
+def _futures_or_warn(cfg: RunConfig, names: list[str]) -> dict[str, dict[str, np.ndarray]]:
+    try:
+        return future_samples(cfg, names, seed=cfg.fit.seed)
+    except CeilingError as exc:
+        warnings.warn(f"the future layers could not be sampled ({exc}); the fit cannot say whether factors "
+                      "left out of the minimum part ways in the future", CeilingWarning, stacklevel=2)
+        return {}
+
+
 def _sha256(path: Path | None) -> str | None:
     if path is None or not Path(path).is_file():
         return None
@@ -169,19 +230,15 @@ def fit_config(cfg: RunConfig) -> FitRun:
                 samples, specs, select=cfg.fit.select, tau=tau, transform=transform,
                 block=cfg.fit.cv_block, folds=cfg.fit.cv_folds, seed=cfg.fit.seed,
                 fit_options=dict(outside=cfg.fit.outside, screen=False, keep=cfg.fit.keep,
-                                 drop=cfg.fit.drop, method=cfg.fit.method, joint_starts=1),
+                                 drop=cfg.fit.drop, method=cfg.fit.method, joint_starts=1, shape=cfg.fit.shape),
             )
             tau, transform = selection.chosen["tau"], selection.chosen["transform"]
             if "basis" in selection.chosen:
                 specs = [replace(f, basis=selection.chosen["basis"], df=selection.chosen["df"]) for f in specs]
+        futures = _futures_or_warn(cfg, [f.name for f in specs]) if cfg.fit.screen else {}
         for sp, s in samples.items():
-            models[sp] = fit(
-                s, specs, tau=tau, transform=transform, outside=cfg.fit.outside,
-                wedge_replicates=cfg.fit.wedge_replicates, wedge_alpha=cfg.fit.wedge_alpha,
-                seed=cfg.fit.seed, screen=cfg.fit.screen, keep=cfg.fit.keep, drop=cfg.fit.drop,
-                duplicate_threshold=cfg.fit.duplicate_threshold, method=cfg.fit.method,
-                joint_starts=cfg.fit.joint_starts,
-            )
+            models[sp] = fit(s, specs, **{**fit_options(cfg.fit), "tau": tau, "transform": transform,
+                                          "futures": futures})
             if cfg.fit.bootstrap > 0:
                 models[sp] = bootstrap_model(
                     models[sp], s, replicates=cfg.fit.bootstrap, seed=cfg.fit.bootstrap_seed,

@@ -47,17 +47,19 @@ from typing import Any
 
 import numpy as np
 from scipy.optimize import minimize
-from scipy.special import logsumexp, ndtr
+from scipy.special import ndtr
+from threadpoolctl import threadpool_limits
 
 from .boundary import FactorCeiling, check_loss
+from .boundary.shapes import ConcaveForm, concave_form
 from .kernels import forward_transform
-from .uncertainty import smoothed_check_loss
 
 __all__ = ["JointFit", "joint_fit", "TEMPERATURES", "MAX_ITER"]
 
 TEMPERATURES = (0.3, 0.1, 0.03, 0.01)
 MAX_ITER = 500
 PERTURBATION = 0.1
+_INV_SQRT_2PI = 1.0 / np.sqrt(2.0 * np.pi)
 
 
 @dataclass(frozen=True)
@@ -89,8 +91,15 @@ class JointFit:
         }
 
 
-def _designs(factors: Sequence[FactorCeiling], values: Mapping[str, Any]) -> list[np.ndarray]:
-    return [f.basis.design(f._x(np.asarray(values[f.factor], dtype=np.float64))) for f in factors]
+def _forms(factors: Sequence[FactorCeiling], concave: bool, fixed: Sequence[str]) -> list[ConcaveForm]:
+    """Each factor's parameterisation: concave (bounded) or its own basis (free)."""
+    out = []
+    for f in factors:
+        form = concave_form(f.basis)
+        if not concave or f.factor in fixed:
+            form = ConcaveForm(f.basis, (None,) * f.basis.n_params, native=True)
+        out.append(form)
+    return out
 
 
 def _hard(theta: np.ndarray, Xs: list[np.ndarray], cuts: np.ndarray, y: np.ndarray, tau: float):
@@ -103,19 +112,65 @@ def _surrogate(theta: np.ndarray, Xs: list[np.ndarray], cuts: np.ndarray, y: np.
                tau: float, T: float) -> tuple[float, np.ndarray]:
     """Smoothed objective (soft minimum, softplus, smoothed check loss) and its gradient."""
     eta = np.stack([X @ b for X, b in zip(Xs, np.split(theta, cuts))])
-    a = -eta / T
-    lse = logsumexp(a, axis=0)
-    smin = -T * lse
-    w = np.exp(a - lse)  # d softmin / d f_k
+    a = eta * (-1.0 / T)
+    top = a.max(axis=0)
+    e = np.exp(a - top)
+    tot = e.sum(axis=0)
+    smin = -T * (top + np.log(tot))  # soft minimum: -T log sum_k exp(-f_k / T)
+    w = e / tot  # d softmin / d f_k
     z = smin / T
     c = T * np.logaddexp(0.0, z)
     dc = 0.5 * (1.0 + np.tanh(0.5 * z))  # logistic(z), overflow-free
     u = y - c
-    loss = smoothed_check_loss(u, tau, T)
-    dl = -(tau - ndtr(-u / T))  # d loss / d c
-    g = np.concatenate([X.T @ (dl * dc * w[k]) for k, X in enumerate(Xs)])
+    s = u / T
+    phi_tail = ndtr(-s)
+    loss = u * (tau - phi_tail) + T * np.exp(-0.5 * s * s) * _INV_SQRT_2PI  # smoothed check loss
+    g_c = (phi_tail - tau) * dc  # d loss / d c, times d c / d softmin
+    g = np.concatenate([X.T @ (g_c * w[k]) for k, X in enumerate(Xs)])
     n = y.size
     return float(loss.sum() / n), g / n
+
+
+@dataclass(frozen=True)
+class _Problem:
+    """The data of one joint fit, in the solver's parameterisation."""
+
+    Xs: list[np.ndarray]
+    cuts: np.ndarray
+    y: np.ndarray
+    tau: float
+    free: np.ndarray
+    upper: np.ndarray
+    bounds: list[tuple[float | None, float | None]]
+    scale: float
+
+    def hard(self, theta: np.ndarray):
+        return _hard(theta, self.Xs, self.cuts, self.y, self.tau)
+
+
+def _anneal(pb: _Problem, theta0: np.ndarray, *, starts: int, seed: int,
+            temperatures: Sequence[float]) -> tuple[float, np.ndarray, int, int]:
+    """Best (exact loss, coefficients, start, iterations) over the seeded starts."""
+    best_loss, best_theta, best_start = pb.hard(theta0)[0], theta0, -1
+    rng = np.random.default_rng(seed)
+    iterations = 0
+    if not (pb.free.any() and pb.y.size):
+        return best_loss, best_theta, best_start, iterations
+    for st in range(starts):
+        theta = theta0.copy()
+        if st:
+            theta = np.where(pb.free, theta * (1.0 + PERTURBATION * rng.standard_normal(theta.size)), theta)
+            theta = np.minimum(theta, pb.upper)
+        for t in temperatures:
+            res = minimize(_surrogate, theta, args=(pb.Xs, pb.cuts, pb.y, pb.tau, t * pb.scale), jac=True,
+                           method="L-BFGS-B", bounds=pb.bounds, options={"maxiter": MAX_ITER})
+            iterations += int(res.nit)
+            if np.all(np.isfinite(res.x)):
+                theta = res.x
+        loss = pb.hard(theta)[0]
+        if loss < best_loss - 1e-12:
+            best_loss, best_theta, best_start = loss, theta, st
+    return best_loss, best_theta, best_start, iterations
 
 
 def joint_fit(
@@ -128,6 +183,8 @@ def joint_fit(
     starts: int = 3,
     seed: int = 0,
     fixed: Sequence[str] = (),
+    concave: bool = False,
+    temperatures: Sequence[float] = TEMPERATURES,
 ) -> JointFit:
     """Fit the curves of ``factors`` together so that their minimum is the tau boundary.
 
@@ -136,42 +193,38 @@ def joint_fit(
     abundance there (untransformed; ``transform`` is applied as in the per-factor fits).
     Points with a missing value are left out. Curves of the factors named in ``fixed`` (say,
     binned-maxima fits, which follow their own rule) take part in the minimum unchanged.
+    ``temperatures`` is the annealing path (warm starts near the answer may skip the first
+    stages). With ``concave`` every other curve is kept concave (:mod:`ceiling.boundary.shapes`); a
+    start that bends upward is first replaced by the nearest concave curve.
     """
     y_all = np.asarray(abundance, dtype=np.float64)
     cols = [np.asarray(values[f.factor], dtype=np.float64) for f in factors]
     ok = np.isfinite(y_all) & np.all(np.isfinite(np.stack(cols)), axis=0)
     y = forward_transform(y_all[ok], transform)
-    Xs = _designs(factors, {f.factor: c[ok] for f, c in zip(factors, cols)})
+    forms = _forms(factors, concave, fixed)
+    xs = [f._x(c[ok]) for f, c in zip(factors, cols)]
+    Xs = [fm.design(x) for fm, x in zip(forms, xs)]
     sizes = [X.shape[1] for X in Xs]
-    cuts = np.cumsum(sizes)[:-1]
-    theta0 = np.concatenate([np.asarray(f.params, dtype=np.float64) for f in factors])
+    upper = np.array([np.inf if u is None else u for fm in forms for u in fm.upper])
+    theta0 = np.minimum(np.concatenate([fm.nearest(np.asarray(f.params, dtype=np.float64), x)
+                                        for fm, f, x in zip(forms, factors, xs)]), upper)
     free = np.concatenate([np.full(n, f.factor not in fixed) for f, n in zip(factors, sizes)])
-    bounds = [(None, None) if fr else (v, v) for fr, v in zip(free, theta0)]
+    bounds = [(None, u if np.isfinite(u) else None) if fr else (v, v) for fr, v, u in zip(free, theta0, upper)]
     scale = float(np.quantile(y, tau)) if y.size else 1.0
     if not scale > 0:
-        scale = float(np.max(np.abs(y))) or 1.0
-    start_loss, _, _ = _hard(theta0, Xs, cuts, y, tau)
-    best_loss, best_theta, best_start = start_loss, theta0, -1
-    rng = np.random.default_rng(seed)
-    iterations = 0
-    if free.any() and y.size:
-        for st in range(starts):
-            theta = theta0.copy()
-            if st:
-                theta = np.where(free, theta * (1.0 + PERTURBATION * rng.standard_normal(theta.size)), theta)
-            for t in TEMPERATURES:
-                res = minimize(_surrogate, theta, args=(Xs, cuts, y, tau, t * scale), jac=True,
-                               method="L-BFGS-B", bounds=bounds, options={"maxiter": MAX_ITER})
-                iterations += int(res.nit)
-                if np.all(np.isfinite(res.x)):
-                    theta = res.x
-            loss, _, _ = _hard(theta, Xs, cuts, y, tau)
-            if loss < best_loss - 1e-12:
-                best_loss, best_theta, best_start = loss, theta, st
-    end_loss, c, lim = _hard(best_theta, Xs, cuts, y, tau)
+        scale = float(np.max(np.abs(y))) if y.size and np.max(np.abs(y)) > 0 else 1.0
+    pb = _Problem(Xs, np.cumsum(sizes)[:-1], y, float(tau), free, upper, bounds, scale)
+    start_loss = pb.hard(theta0)[0]
+    # BLAS on one thread: each iteration is a few small products, and a pool of BLAS threads
+    # costs far more than it saves (measured: L-BFGS-B iterations 10 to 100 times slower on
+    # two busy cores with OpenBLAS's default of one thread per core)
+    with threadpool_limits(limits=1, user_api="blas"):
+        _, best_theta, best_start, iterations = _anneal(pb, theta0, starts=starts, seed=seed,
+                                                        temperatures=temperatures)
+    end_loss, c, lim = pb.hard(best_theta)
     tol = 1e-9 * max(1.0, float(np.abs(c).max()) if c.size else 1.0)
     share = {f.factor: float(np.mean(lim == k)) if y.size else 0.0 for k, f in enumerate(factors)}
-    params = {f.factor: b for f, b in zip(factors, np.split(best_theta, cuts))}
+    params = {f.factor: fm.to_basis(b) for f, fm, b in zip(factors, forms, np.split(best_theta, pb.cuts))}
     return JointFit(
         params=params, objective_start=start_loss, objective_end=end_loss, iterations=iterations,
         starts=starts, best_start=best_start, limiting_share=share,

@@ -25,7 +25,7 @@ from .errors import FitError, InputFileError, ModelFileError
 from .kernels import combine_minimum
 from .outputs.atomic import atomic_write_text
 
-__all__ = ["SCHEMA_VERSION", "FactorSpec", "CeilingModel", "ModelSet", "fit", "load_model", "load_models"]
+__all__ = ["SCHEMA_VERSION", "FactorSpec", "FitOptions", "CeilingModel", "ModelSet", "fit", "load_model", "load_models"]
 
 SCHEMA_VERSION = 1
 FILE_KIND = "ceiling-model"
@@ -284,147 +284,113 @@ def _plain(d: Any) -> Any:
     return d
 
 
-def screen_factors(
-    fitted: Sequence[FactorCeiling],
-    values: Any,
-    *,
-    screen: bool = True,
-    keep: Sequence[str] = (),
-    drop: Sequence[str] = (),
-    duplicate_threshold: float = 0.9,
-    wedge_alpha: float = 0.05,
-) -> dict[str, str]:
-    """Which fitted factors to leave out of the minimum, with the reason for each.
+@dataclass(frozen=True)
+class FitOptions:
+    """Every option of :func:`fit`. These library defaults fit one curve per factor with every
+    factor in the minimum; a config's defaults are :func:`ceiling.fitting.fit_options`."""
 
-    With ``screen``: a factor whose wedge test does not reject equal slopes at tau and at the
-    median (p >= ``wedge_alpha``) has no distinct upper edge and is left out; of two factors
-    whose values at the survey points have an absolute Spearman rank correlation above
-    ``duplicate_threshold`` only the one with the clearer edge (lower wedge p-value) is kept.
-    Factors in ``keep`` always stay in, those in ``drop`` always go; at least one factor stays.
-    Returns factor name -> reason, for the factors left out.
-    """
-    from scipy.stats import spearmanr
+    tau: float = 0.95
+    transform: str = "none"
+    outside: str = "hold"
+    wedge_replicates: int = 50
+    wedge_alpha: float = 0.05
+    seed: int = 0
+    # factor screening (ceiling.screening): leave out of the minimum the factors that held-out
+    # sites do not confirm; keep / drop force factors in / out
+    screen: bool = False
+    keep: tuple[str, ...] = ()
+    drop: tuple[str, ...] = ()
+    # how the curves are chosen: each on its own, or together under the minimum (ceiling.joint)
+    method: str = "per_factor"
+    joint_starts: int = 3
+    # shape rule of the joint fit's curves: "concave" (ceiling.boundary.shapes) or "free"
+    shape: str = "free"
+    # the screening's test: "cv" (blocked cross-validation of the joint fit) or "wedge" (wedge
+    # test, bootstrapping spatial blocks)
+    edge_test: str = "cv"
+    cv_folds: int = 5
+    cv_block: float | None = None
+    # factor values at a sample of cells of each future ({label: {factor: values}}), to say in
+    # the reasons when a factor left out parts ways in the future with one kept
+    futures: Mapping[str, Mapping[str, np.ndarray]] | None = None
 
-    keep, drop = set(keep), set(drop)
-    out: dict[str, str] = {}
-    p = {f.factor: (f.diagnostics.wedge_p if np.isfinite(f.diagnostics.wedge_p) else 0.0) for f in fitted}
-    for f in fitted:
-        if f.factor in drop:
-            out[f.factor] = "left out by fit.drop"
-    if screen:
-        for f in fitted:
-            wp = f.diagnostics.wedge_p
-            if f.factor not in out and f.factor not in keep and np.isfinite(wp) and wp >= wedge_alpha:
-                out[f.factor] = f"no distinct upper edge (wedge test p={wp:.3g} >= {wedge_alpha:g})"
-        names = [f.factor for f in fitted]
-        cols = {n: np.asarray(values[n], dtype=np.float64) for n in names}
-        # strongest pairs first, so a chain of duplicates keeps its clearest member
-        pairs = []
-        for a_i, a in enumerate(names):
-            for b in names[a_i + 1:]:
-                ok = np.isfinite(cols[a]) & np.isfinite(cols[b])
-                if ok.sum() < 3:
-                    continue
-                r = float(spearmanr(cols[a][ok], cols[b][ok]).statistic)
-                if np.isfinite(r) and abs(r) > duplicate_threshold:
-                    pairs.append((abs(r), a, b))
-        for r, a, b in sorted(pairs, reverse=True):
-            if a in out or b in out:
-                continue
-            if a in keep and b in keep:
-                continue
-            if a in keep or (b not in keep and p[a] <= p[b]):
-                win, lose = a, b
-            else:
-                win, lose = b, a
-            why = "fit.keep" if win in keep else f"its edge is clearer (wedge p {p[win]:.3g} vs {p[lose]:.3g})"
-            out[lose] = (f"near-duplicate of {win} (|Spearman| {r:.3f} > {duplicate_threshold:g} at the "
-                         f"survey points); {win} is kept: {why}")
-    if len(out) >= len(fitted):
-        # never an empty minimum: keep the factor with the clearest edge
-        best = min((f for f in fitted if f.factor not in drop), key=lambda f: p[f.factor], default=fitted[0])
-        out.pop(best.factor, None)
-    return out
+    def check(self) -> FitOptions:
+        if self.transform not in ("none", "log1p", "sqrt"):
+            raise FitError(f"The 'transform' parameter must be none, log1p or sqrt; got {self.transform!r}")
+        if self.method not in ("per_factor", "joint"):
+            raise FitError(f"The 'method' parameter must be 'per_factor' or 'joint'; got {self.method!r}")
+        if self.shape not in ("free", "concave"):
+            raise FitError(f"The 'shape' parameter must be 'free' or 'concave'; got {self.shape!r}")
+        if self.edge_test not in ("cv", "wedge", "both"):
+            raise FitError(f"The 'edge_test' parameter must be 'cv', 'wedge' or 'both'; got {self.edge_test!r}")
+        return replace(self, keep=tuple(self.keep), drop=tuple(self.drop))
 
 
-def fit(
-    samples: Any,
-    factors: Sequence[Any] | None = None,
-    *,
-    tau: float = 0.95,
-    transform: str = "none",
-    outside: str = "hold",
-    wedge_replicates: int = 50,
-    wedge_alpha: float = 0.05,
-    seed: int = 0,
-    screen: bool = False,
-    keep: Sequence[str] = (),
-    drop: Sequence[str] = (),
-    duplicate_threshold: float = 0.9,
-    method: str = "per_factor",
-    joint_starts: int = 3,
-) -> CeilingModel:
+def _blocks(samples: Any, opts: FitOptions) -> np.ndarray | None:
+    """Spatial block labels of the points (for the wedge test's bootstrap), when they have coordinates."""
+    from .selection import default_block
+    from .uncertainty import spatial_blocks
+
+    x, y = getattr(samples, "x", None), getattr(samples, "y", None)
+    if x is None or y is None or not (np.all(np.isfinite(x)) and np.all(np.isfinite(y))):
+        return None
+    x, y = np.asarray(x, dtype=np.float64), np.asarray(y, dtype=np.float64)
+    return spatial_blocks(x, y, opts.cv_block if opts.cv_block is not None else default_block(x, y))
+
+
+def fit(samples: Any, factors: Sequence[Any] | None = None, options: FitOptions | None = None,
+        **kwargs: Any) -> CeilingModel:
     """Fit one species' multi-factor ceiling.
 
     ``samples`` is a :class:`ceiling.samples.Samples` (or anything with ``abundance``,
-    ``values`` (a table of factor columns) and ``species``). ``factors`` lists factor names or
-    :class:`FactorSpec` (per-factor basis and estimator); by default every column of
-    ``samples.values`` with a quadratic basis.
+    ``values`` (a table of factor columns), ``species`` and, for spatial blocks, ``x`` and
+    ``y``). ``factors`` lists factor names or :class:`FactorSpec` (per-factor basis and
+    estimator); by default every column of ``samples.values`` with a quadratic basis. Options
+    come as a :class:`FitOptions` and/or as keywords of its fields.
 
-    Every factor is first fitted on its own (:func:`ceiling.boundary.fit_factor`). With
-    ``screen`` (or ``keep`` / ``drop``) :func:`screen_factors` then leaves some out of the
-    minimum (they stay in the model as ``screened``, with the reason). With
+    Every factor is first fitted on its own (:func:`ceiling.boundary.fit_factor`; the wedge
+    test resamples spatial blocks when the samples have coordinates). With
     ``method="joint"`` the curves of the factors in the minimum are then chosen together
-    (:func:`ceiling.joint.joint_fit`); binned-maxima curves stay as fitted.
+    (:func:`ceiling.joint.joint_fit`; binned-maxima curves stay as fitted). With ``screen``
+    some factors are left out of the minimum (:mod:`ceiling.screening`); they stay in the
+    model as ``screened``, with the reason; ``keep`` / ``drop`` force factors in / out.
     """
-    if transform not in ("none", "log1p", "sqrt"):
-        raise FitError(f"The 'transform' parameter must be none, log1p or sqrt; got {transform!r}")
-    if method not in ("per_factor", "joint"):
-        raise FitError(f"The 'method' parameter must be 'per_factor' or 'joint'; got {method!r}")
+    from .screening import choose_factors
+
+    opts = replace(options or FitOptions(), **kwargs).check()
     values = samples.values
     specs = [FactorSpec.coerce(f) for f in (factors if factors is not None else list(values.columns))]
     y = np.asarray(samples.abundance, dtype=np.float64)
+    blocks = _blocks(samples, opts) if opts.wedge_replicates else None
     fitted = []
     for i, s in enumerate(specs):
         if s.name not in values:
             raise FitError(f"factor '{s.name}' has no values in the samples; it has {list(values.columns)}")
         try:
             fc = fit_factor(
-                np.asarray(values[s.name], dtype=np.float64), y, factor=s.name, tau=tau,
-                basis=s.basis, df=s.df, transform=transform, outside=outside,
-                estimator=s.estimator, bins=s.bins, wedge_replicates=wedge_replicates,
-                wedge_alpha=wedge_alpha, seed=seed + i, units=s.units, label=s.label,
+                np.asarray(values[s.name], dtype=np.float64), y, factor=s.name, tau=opts.tau,
+                basis=s.basis, df=s.df, transform=opts.transform, outside=opts.outside,
+                estimator=s.estimator, bins=s.bins, wedge_replicates=opts.wedge_replicates,
+                wedge_alpha=opts.wedge_alpha, seed=opts.seed + i, units=s.units, label=s.label, blocks=blocks,
             )
         except FitError as exc:  # name the species: a run fits several
             raise FitError(f"species '{getattr(samples, 'species', 'species')}': {exc}") from None
         fitted.append(fc)
-    out = screen_factors(fitted, values, screen=screen, keep=keep, drop=drop,
-                         duplicate_threshold=duplicate_threshold, wedge_alpha=wedge_alpha)
-    kept = [f for f in fitted if f.factor not in out]
-    screened = [replace(f, in_minimum=False, screened_reason=out[f.factor]) for f in fitted if f.factor in out]
-    info: dict[str, Any] = {"method": "per_factor"}
-    if method == "joint":
-        from .joint import joint_fit
-
-        jf = joint_fit(kept, values, y, tau=tau, transform=transform, starts=joint_starts, seed=seed,
-                       fixed=[f.factor for f in kept if f.estimator == "binned"])
-        # the standard errors are the per-factor QuantReg ones; the intervals keep their
-        # width and are recentred on the joint estimate (an approximation: the joint fit has
-        # no sandwich estimate of its own; the bootstrap gives proper bounds)
-        kept = [replace(f, params=jf.params[f.factor],
-                        conf_int=f.conf_int + (jf.params[f.factor] - f.params)[:, None]) for f in kept]
-        info = jf.to_dict()
+    chosen = choose_factors(fitted, samples, opts)
+    kept = [f for f in chosen.factors if f.factor not in chosen.left_out]
+    screened = [replace(f, in_minimum=False, screened_reason=chosen.left_out[f.factor])
+                for f in chosen.factors if f.factor in chosen.left_out]
     return CeilingModel(
         species=str(getattr(samples, "species", "species")),
         factors=tuple(kept),
-        tau=float(tau),
-        transform=transform,
-        outside=outside,
+        tau=float(opts.tau),
+        transform=opts.transform,
+        outside=opts.outside,
         n_points=int(y.size),
         dropped=dict(getattr(samples, "dropped", {}) or {}),
         reference={f.factor: _sorted_finite(values[f.factor]) for f in kept},
         screened=tuple(screened),
-        fit_info=info,
+        fit_info=chosen.info,
     )
 
 

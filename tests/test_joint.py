@@ -170,3 +170,45 @@ def test_default_fit_meets_the_acceptance_on_the_demo_grid(demo_run, per_factor_
     assert share - share_a >= ACCEPT_GAIN[sp], (share, share_a)
     assert rho >= ACCEPT_RHO and rho >= rho_a, (rho, rho_a)
     assert sign >= ACCEPT_SIGN, sign
+
+
+@pytest.mark.parametrize("df", [3, 4])
+def test_concave_spline_form_spans_the_natural_spline_and_its_bounds_mean_concave(df):
+    # the natural cubic spline's second derivative is a linear spline, zero at the boundary
+    # knots (Hastie, Tibshirani & Friedman, The Elements of Statistical Learning, 2nd ed.,
+    # sec. 5.2.1), so it is a sum of hat functions at the interior knots: coefficients <= 0
+    # on them are exactly the concave curves, and the two bases span the same curves
+    from ceiling.boundary import make_basis
+    from ceiling.boundary.shapes import concave_form
+
+    x = np.random.default_rng(0).uniform(-3, 7, 400)
+    b = make_basis("spline", x, df=df)
+    form = concave_form(b)
+    grid = np.linspace(-3, 7, 401)
+    theta = np.random.default_rng(1).normal(size=b.n_params)
+    back = form.to_basis(form.from_basis(theta))
+    np.testing.assert_allclose(b.design(grid) @ back, b.design(grid) @ theta, atol=1e-8)
+    rng = np.random.default_rng(2)
+    for _ in range(20):  # random coefficients within the bounds: the curve bends down everywhere
+        phi = rng.normal(size=b.n_params)
+        phi[2:] = -np.abs(phi[2:])
+        curve = form.design(grid) @ phi
+        np.testing.assert_allclose(b.design(grid) @ form.to_basis(phi), curve, atol=1e-8)
+        assert np.all(np.diff(curve, 2) <= 1e-9)
+
+
+def test_concave_joint_fit_keeps_every_quadratic_bent_down():
+    # a convex start (a curve that rises again at both ends) is replaced by the nearest concave
+    # one, and the fitted quadratics all have a second coefficient <= 0; on the toy (linear
+    # truth) the concave fit is as good as the free one
+    rng = np.random.default_rng(5)
+    toy = _Toy(n=800, seed=5)
+    toy.values["noise"] = rng.uniform(0, 10, 800)
+    specs = [{"name": n, "basis": "quadratic"} for n in ("a", "b", "noise")]
+    per = fit(toy, specs, tau=TAU, wedge_replicates=0, seed=0)
+    start = [f for f in per.factors]
+    start[2] = type(start[2])(**{**start[2].__dict__, "params": np.array([0.0, 0.0, 50.0])})  # convex start
+    free = joint_fit(start, toy.values, toy.abundance, tau=TAU, seed=0)
+    conc = joint_fit(start, toy.values, toy.abundance, tau=TAU, seed=0, concave=True)
+    assert all(b[2] <= 1e-12 for b in conc.params.values()), conc.params
+    assert conc.objective_end <= free.objective_end * 1.02, (conc.objective_end, free.objective_end)

@@ -20,6 +20,8 @@ import pytest
 import rasterio
 from projection_helpers import REPO, demo_run, geod_row_areas
 
+from ceiling.model import load_models
+
 TEMPLATE = REPO / "demo_grids" / "present" / "tmax_warm.tif"
 FACTORS = ["tmax_warm", "tmin_cold", "precip", "moisture"]  # configs/demo.toml order
 SPECIES = ["sp_a", "sp_b", "sp_c"]
@@ -240,4 +242,19 @@ def test_netcdf_maps_match_the_geotiffs(demo):
             with rasterio.open(demo / "sp_b" / FUTURE / f"{layer}.tif") as src:
                 m = src.read(1, masked=True)
             tif = np.ma.filled(m.astype(np.float64), np.nan)
+            if layer == "switch":  # by names: each GeoTIFF codes its own model's factors, the NetCDF all used ones
+                nc, tif = _switch_names(nc, demo, None), _switch_names(tif, demo, "sp_b")
             np.testing.assert_array_equal(nc, tif, err_msg=layer)
+
+
+def _switch_names(codes: np.ndarray, demo, species: str | None) -> np.ndarray:
+    """Switch codes (present * K + future) as 'a->b' names: of ``species``'s own factors, or
+    (None) of the factors any species uses, in config order (the NetCDF's list)."""
+    models = list(load_models(demo / "model.json"))
+    if species is None:
+        names = [f for f in FACTORS if any(f in m.factor_names for m in models)]
+    else:
+        names = next(m for m in models if m.species == species).factor_names
+    k = len(names)
+    return np.array([("" if np.isnan(c) else f"{names[int(c) // k]}->{names[int(c) % k]}") for c in codes.ravel()],
+                    dtype=object).reshape(codes.shape)

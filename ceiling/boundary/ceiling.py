@@ -190,8 +190,14 @@ def fit_factor(
     seed: int = 0,
     units: str | None = None,
     label: str | None = None,
+    blocks: np.ndarray | None = None,
 ) -> FactorCeiling:
-    """Fit the upper boundary of abundance ``y`` along factor values ``x``."""
+    """Fit the upper boundary of abundance ``y`` along factor values ``x``.
+
+    ``blocks`` (a spatial block label per point, as from
+    :func:`ceiling.uncertainty.spatial_blocks`) makes the wedge test resample whole blocks, so
+    that clustered sites are not counted as independent evidence.
+    """
     if not 0.5 < float(tau) < 1.0:
         raise FitError(f"The 'tau' parameter must be in (0.5, 1) for a ceiling; got {tau!r}")
     if outside not in ("hold", "extend"):
@@ -202,6 +208,8 @@ def fit_factor(
     y = np.asarray(y, dtype=np.float64)
     ok = np.isfinite(x) & np.isfinite(y)
     x, y = x[ok], y[ok]
+    if blocks is not None:
+        blocks = np.unique(np.asarray(blocks)[ok], return_inverse=True)[1].ravel()
     b = make_basis(basis, x, df=df, factor=factor)
     need = max(2 * b.n_params, 10)
     if x.size < need:
@@ -230,7 +238,7 @@ def fit_factor(
         ci = np.asarray(ols.conf_int(alpha=0.05), dtype=np.float64)
     fitted = X @ params
     stat, wdf, p = wedge_test(
-        yt, X, tau, replicates=wedge_replicates, seed=seed, params_tau=qfit.params
+        yt, X, tau, replicates=wedge_replicates, seed=seed, params_tau=qfit.params, blocks=blocks
     )
     verdict = NOT_TESTED if not np.isfinite(p) else (LIMITING if p < wedge_alpha else NO_EDGE)
     lo, hi = float(x.min()), float(x.max())

@@ -5,7 +5,10 @@
   summed check loss (Koenker & Machado 1999, JASA 94:1296-1310),
 - where the ceiling peaks and where it is above zero over the observed range,
 - the wedge test: a Wald test that the slope coefficients at tau equal those at the median, with
-  the covariance of the difference from a seeded pairs bootstrap. Equal slopes mean the upper
+  the covariance of the difference from a seeded bootstrap: of points, or of whole spatial
+  blocks of points when block labels are given (a cluster bootstrap, Davison & Hinkley 1997,
+  sec. 3.8: sites of one cluster share their surroundings and are not independent evidence, and
+  a pairs bootstrap of clustered sites understates the variance). Equal slopes mean the upper
   edge runs parallel to the centre of the cloud (no distinct upper edge); different slopes mean
   the spread of abundance changes with the factor, the wedge a limiting factor makes.
 """
@@ -74,6 +77,7 @@ def wedge_test(
     seed: int,
     params_tau: np.ndarray | None = None,
     solver: str = "smoothed",
+    blocks: np.ndarray | None = None,
 ) -> tuple[float, int, float]:
     """Wald test of equal slopes at ``tau`` and at 0.5; returns (statistic, df, p-value).
 
@@ -82,7 +86,8 @@ def wedge_test(
     quantile solver (:func:`ceiling.uncertainty.smoothed_quantile_fit`, case weights = resample
     counts), the replicate being the exact full-sample fit plus the smoothed fit's shift, as
     the model bootstrap does; a replicate whose smoothed fit does not converge is refitted
-    exactly. ``solver="exact"`` refits every replicate with statsmodels' QuantReg.
+    exactly. ``solver="exact"`` refits every replicate with statsmodels' QuantReg. ``blocks``
+    (labels 0..G-1, one per point) resamples whole blocks instead of points.
     """
     p = X.shape[1]
     dfree = p - 1
@@ -92,16 +97,18 @@ def wedge_test(
     b_med = quantile_fit(y, X, 0.5, with_errors=False).params
     diff = (b_tau - b_med)[1:]
     n = y.size
+    from ..uncertainty import bootstrap_counts, counts_to_indices
+
+    counts = bootstrap_counts(n, replicates, seed=seed, blocks=blocks)
     if solver == "exact":
-        rng = np.random.default_rng(seed)
         reps = np.empty((replicates, dfree))
         quick = {"with_errors": False, "max_iter": REPLICATE_MAX_ITER, "p_tol": REPLICATE_P_TOL, "warn": False}
         for b in range(replicates):
-            idx = rng.integers(0, n, n)
+            idx = counts_to_indices(counts[b])
             yb, Xb = y[idx], X[idx]
             reps[b] = (quantile_fit(yb, Xb, tau, **quick).params - quantile_fit(yb, Xb, 0.5, **quick).params)[1:]
     else:
-        reps = _smoothed_replicates(y, X, tau, b_tau, b_med, replicates, seed)
+        reps = _smoothed_replicates(y, X, tau, b_tau, b_med, counts.astype(np.float64))
     cov = np.atleast_2d(np.cov(reps, rowvar=False))
     stat = float(diff @ np.linalg.pinv(cov) @ diff)
     from scipy import stats  # imported when testing, not at start-up
@@ -110,17 +117,10 @@ def wedge_test(
 
 
 def _smoothed_replicates(y: np.ndarray, X: np.ndarray, tau: float, b_tau: np.ndarray,
-                         b_med: np.ndarray, replicates: int, seed: int) -> np.ndarray:
-    from ..uncertainty import (
-        bootstrap_counts,
-        counts_to_indices,
-        residual_band,
-        smoothed_quantile_fit,
-        smoothing_bandwidth,
-    )
+                         b_med: np.ndarray, counts: np.ndarray) -> np.ndarray:
+    from ..uncertainty import counts_to_indices, residual_band, smoothed_quantile_fit, smoothing_bandwidth
 
     n, p = X.shape
-    counts = bootstrap_counts(n, replicates, seed=seed).astype(np.float64)
     out = []
     for q, b_full in ((tau, b_tau), (0.5, b_med)):
         h = smoothing_bandwidth(n, p, residual_band(y - X @ b_full, q))
