@@ -22,6 +22,7 @@ from .kernels import NODATA_CODE, change_kernel, switch_kernel, zone_kernel
 from .kernels_fast import evaluate as evaluate_fast
 from .model import CeilingModel
 from .novelty import check_reference, mess_kernel
+from .outputs.names import FUTURE_BOUNDS, PRESENT_BOUNDS
 from .scenarios import Climate, ProjectionOptions
 
 __all__ = ["climate_readers", "uncertainty", "has_replicates", "PRESENT_BOUNDS", "FUTURE_BOUNDS", "open_climate", "project", "novel_rule", "with_policy", "compare", "climate_stats", "valid_counts", "StatsLayout", "model_units"]
@@ -270,8 +271,6 @@ def valid_counts(arr: da.Array) -> da.Array:
     )
 
 
-PRESENT_BOUNDS = ("ceiling_lower", "ceiling_upper")
-FUTURE_BOUNDS = ("ceiling_lower", "ceiling_upper", "change_lower", "change_upper", "p_release", "p_constraint")
 _FROM_KERNEL = {"ceiling_lower": "future_low", "ceiling_upper": "future_high", "change_lower": "change_low",
                 "change_upper": "change_high", "p_release": "release_probability", "p_constraint": "constraint_probability"}
 
