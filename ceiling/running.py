@@ -212,7 +212,7 @@ def run_inputs(cfg: RunConfig, cl: Sequence[Climate], model_path: Path | None, z
     """Every file that shapes a projection's result, once each: the survey and factor layers,
     every climate's layers, the template, the mask, the zones and the model file. They are
     listed in the manifest, fingerprinted for --resume and protected from --overwrite."""
-    from .fitting import config_inputs, with_companions
+    from .companions import config_inputs, with_companions
 
     opts = projection_options(cfg)
     files = config_inputs(cfg) + _all_layer_paths(list(cl)) + derive_inputs(cfg, list(cl))
@@ -463,7 +463,6 @@ def _project_to_folder(cfg: RunConfig, out: Path, cl: list[Climate], inputs: lis
                        threads: int | None, progress: Callable[[str], None] | None, resume: bool, zones_in: Any,
                        community_opts: Any, t_start: float) -> RunResult:
     from .community import build_community
-    from .fitting import fit_config, write_fit
     from .model import load_models
     from .outputs.atomic import Prefetch
     from .outputs.folder import staged_folder
@@ -476,6 +475,8 @@ def _project_to_folder(cfg: RunConfig, out: Path, cl: list[Climate], inputs: lis
         models = load_models(model_path)
         path_parts("species", models.species, where=str(model_path))
     else:
+        from .fitting import fit_config
+
         fit_run = fit_config(cfg)
         models = fit_run.models
         if progress:
@@ -484,6 +485,8 @@ def _project_to_folder(cfg: RunConfig, out: Path, cl: list[Climate], inputs: lis
     with staged_folder(out, overwrite=overwrite, resume=resume, fingerprint=run_fingerprint(cfg, inputs, model_path)) as stage, \
             contextlib.ExitStack() as cleanup:
         if fit_run is not None:
+            from .fitting import write_fit
+
             write_fit(fit_run, stage)
         else:
             models.save(stage / MODEL_FILE)
