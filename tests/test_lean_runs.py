@@ -17,6 +17,7 @@ import pytest
 from projection_helpers import SmallCase, assert_refused, cli, config_text
 
 from ceiling.config import load_config
+from ceiling.errors import ConfigError
 from ceiling.outputs.choice import with_outputs
 from ceiling.outputs.names import MAP_NAMES, NETCDF_FILE, STAC_ROOT_FILE, SUMMARY_FILE, TRANSITIONS_FILE
 from ceiling.running import run_fingerprint
@@ -101,6 +102,14 @@ def test_an_unknown_map_name_is_one_error_line_listing_the_valid_ones(case, tmp_
     res = cli(["project", cfg, "--model", case.model, "--out", tmp_path / "out"])
     line = assert_refused(res.exit_code, res.stderr, tmp_path / "out", "outputs.maps", "ceilng", exc=res.exception)
     assert all(name in line for name in MAP_NAMES)
+
+
+def test_the_python_api_checks_the_choice_as_the_config_file_does(case):
+    cfg = load_config(config(case, "api.toml"))
+    with pytest.raises(ConfigError, match=r"outputs\.maps.*'zones'.*valid map names: ceiling"):
+        with_outputs(cfg, maps=["ceiling", "zones"])
+    with pytest.raises(ConfigError, match="outputs.netcdf"):
+        with_outputs(cfg, netcdf="no")
 
 
 def test_what_is_written_is_part_of_the_resume_fingerprint(case):
