@@ -51,8 +51,10 @@ from .outputs.choice import Needs, OutputChoice, computed_in_order, output_choic
 from .outputs.names import (
     ENSEMBLE,
     ENSEMBLE_LAYERS,
+    FUTURE_BOUNDS,
     FUTURE_LAYERS,
     NETCDF_FILE,
+    PRESENT_BOUNDS,
     PRESENT_LAYERS,
     SUMMARY_FILE,
     TRANSITIONS_FILE,
@@ -61,7 +63,6 @@ from .outputs.names import (
 )
 from .outputs.netcdf import NetcdfWriter, create_netcdf
 from .outputs.stream import StreamReader
-from .outputs.names import FUTURE_BOUNDS, PRESENT_BOUNDS
 from .projection import (
     StatsLayout,
     climate_readers,

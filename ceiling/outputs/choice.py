@@ -57,10 +57,6 @@ class OutputChoice:
     netcdf: bool = True
     report: bool = True
 
-    @property
-    def lean(self) -> bool:
-        return set(MAP_NAMES) - set(self.maps) != set() or not (self.netcdf and self.report)
-
     def computed(self, needs: Needs) -> frozenset[str]:
         """The maps to compute: those asked for and those another output reads."""
         out = set(self.maps)
