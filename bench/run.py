@@ -2,7 +2,7 @@
 
     python -m bench                      # full sizes (13-26 minutes on 2 cores); or python bench/run.py
     python -m bench --quick              # small sizes, a smoke run (a few minutes)
-    python -m bench --only kernel,e2e    # a subset: kernel, e2e, naive, memory, parallel, fit, scale, recovery
+    python -m bench --only kernel,e2e    # a subset: kernel, e2e, naive, memory, parallel, fit, scale, lean, recovery
     python -m bench --only recovery      # the virtual-species suite (bench/virtual/): defaults vs the plain fit
     python -m bench --work DIR           # keep the generated inputs in DIR (reused when present)
     python -m bench --json FILE          # also write the results table as JSON
@@ -35,13 +35,14 @@ if __package__ in (None, ""):  # run as a script, python bench/run.py: import th
     __package__ = "bench"
 
 from .inputs import K, build_model, field_rows, write_case  # noqa: E402
+from .lean import bench_lean  # noqa: E402
 
 SIZES = {
     # the sizes the benchmarks ask for; 13.3 minutes on the faster of two 2-core machines, see BENCHMARKS.md
     "full": dict(kernel=16_000_000, e2e=8192, naive=8192, naive_futures=4, memory=(4096, 16384), parallel=4096,
-                 parallel_chunks=16, fit=(20_000, 200)),
+                 parallel_chunks=16, fit=(20_000, 200), lean=(4096, 5)),
     "quick": dict(kernel=2_000_000, e2e=512, naive=512, naive_futures=2, memory=(256, 1024), parallel=512,
-                  parallel_chunks=4, fit=(2_000, 20)),
+                  parallel_chunks=4, fit=(2_000, 20), lean=(512, 2)),
 }
 GLOBAL = (43_200, 21_600, 8)  # 30 arc-second global grid: columns, rows, futures
 
@@ -436,7 +437,7 @@ def bench_recovery(quick: bool) -> None:
 def main(argv: list[str] | None = None) -> None:
     ap = argparse.ArgumentParser(prog="python -m bench", description=__doc__.splitlines()[0])
     ap.add_argument("--quick", action="store_true", help="small sizes: a smoke run of every benchmark")
-    ap.add_argument("--only", default="kernel,e2e,naive,memory,parallel,fit,scale,recovery")
+    ap.add_argument("--only", default="kernel,e2e,naive,memory,parallel,fit,scale,lean,recovery")
     ap.add_argument("--work", type=Path, default=None, help="keep the generated inputs here (reused when present)")
     ap.add_argument("--json", type=Path, default=None, help="write the results table here")
     a = ap.parse_args(argv)
@@ -461,6 +462,8 @@ def main(argv: list[str] | None = None) -> None:
             bench_fit(*size["fit"])
         if "scale" in only:
             bench_scale(work, a.quick)
+        if "lean" in only:
+            bench_lean(work, *size["lean"], record, ceiling_cmd)
         if "recovery" in only:
             bench_recovery(a.quick)
     finally:

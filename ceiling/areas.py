@@ -13,9 +13,13 @@
 
 from __future__ import annotations
 
-import dask.array as da
+from typing import TYPE_CHECKING
+
 import numpy as np
 from pyproj import CRS, Geod, Transformer
+
+if TYPE_CHECKING:  # dask is imported where the lazy arrays are built, not at start-up
+    import dask.array as da
 
 __all__ = ["cell_areas", "window_areas", "zone_area", "EQUAL_AREA_METHODS"]
 
@@ -68,6 +72,8 @@ def window_areas(grid, rows: slice, cols: slice) -> np.ndarray:
 
 def cell_areas(grid, *, chunk: int = 1024) -> da.Array:
     """Lazy (y, x) float64 array of cell areas in m2 for a :class:`~ceiling.grids.GridSpec`."""
+    import dask.array as da
+
     ny, nx = grid.shape
 
     def block(block_info=None):

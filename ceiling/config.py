@@ -14,9 +14,10 @@ import typing
 from pathlib import Path
 from typing import Any, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
+from pydantic import BaseModel, ConfigDict, Field, StrictBool, ValidationError, field_validator, model_validator
 
 from .errors import ConfigError, InputFileError
+from .outputs.names import MAP_NAMES
 
 __all__ = [
     "MIN_REPLICATES",
@@ -167,11 +168,30 @@ class FitConfig(_Section):
 
 
 class OutputsConfig(_Section):
-    """``[outputs]``: its tables are validated by the stages that make them (ceiling.zones,
-    ceiling.community); here only their names."""
+    """``[outputs]``: what a run writes. ``maps`` chooses the maps (every map when left out),
+    ``netcdf`` the NetCDF and ``report`` the report with its figures; the summary tables and the
+    manifest are always written. The tables ``zones`` and ``community`` are validated by the
+    stages that make them (ceiling.zones, ceiling.community); here only their names."""
 
+    maps: list[str] | None = None
+    netcdf: StrictBool = True
+    report: StrictBool = True
     zones: dict[str, Any] | None = None
     community: dict[str, Any] | None = None
+
+    @field_validator("maps")
+    @classmethod
+    def _known_maps(cls, v: list[str] | None) -> list[str] | None:
+        if v is None:
+            return v
+        unknown = [m for m in v if m not in MAP_NAMES]
+        if unknown:
+            raise ValueError(f"unknown map name(s) {', '.join(repr(m) for m in unknown)}; valid map names: "
+                             f"{', '.join(MAP_NAMES)}")
+        if not v:
+            raise ValueError(f"no maps listed; name at least one of {', '.join(MAP_NAMES)}, or leave the key out "
+                             "to write every map")
+        return list(dict.fromkeys(v))
 
 
 class RunConfig(_Section):

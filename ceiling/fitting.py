@@ -17,6 +17,7 @@ import numpy as np
 import rasterio
 
 from . import __version__
+from .companions import config_inputs, with_companions
 from .config import FitConfig, RunConfig
 from .errors import CeilingError, CeilingWarning, DataError, InputFileError
 from .figures import fit_figure, fit_panel
@@ -111,25 +112,6 @@ def factor_specs(cfg: RunConfig) -> list[FactorSpec]:
             FactorSpec(name=f.name, basis=f.basis, df=f.df, estimator=f.estimator, bins=f.bins,
                        units=units, label=f.label)
         )
-    return out
-
-
-def config_inputs(cfg: RunConfig) -> list[Path]:
-    """The survey (with a shapefile's companion files) and the factor layers."""
-    return with_companions([cfg.survey.path]) + [f.layer for f in cfg.factors if f.layer is not None]
-
-
-# files GDAL reads beside a shapefile: they shape what is read as much as the .shp itself
-SHAPEFILE_COMPANIONS = (".shx", ".dbf", ".prj", ".cpg")
-
-
-def with_companions(paths: list[Path]) -> list[Path]:
-    """``paths`` with the existing companion files of each shapefile after it."""
-    out = []
-    for p in paths:
-        out.append(Path(p))
-        if Path(p).suffix.lower() == ".shp":
-            out += [q for ext in SHAPEFILE_COMPANIONS for q in (Path(p).with_suffix(ext),) if q.is_file()]
     return out
 
 

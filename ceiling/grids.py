@@ -15,11 +15,9 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-import dask.array as da
 import numpy as np
 import rasterio
 import xarray as xr
-from dask.base import tokenize
 from rasterio.enums import MaskFlags, Resampling
 from rasterio.errors import RasterioIOError
 from rasterio.vrt import WarpedVRT
@@ -311,6 +309,9 @@ def open_layer(
     resampling: str = "bilinear", cache_mb: int = 64,
 ) -> xr.DataArray:
     """A lazy, aligned, unit-converted layer on the template grid."""
+    import dask.array as da
+    from dask.base import tokenize
+
     reader = layer_reader(ref, template, factor=factor, units=units, resampling=resampling, cache_mb=cache_mb,
                           chunk=chunk)
     arr = da.from_array(reader, chunks=(chunk, chunk), asarray=True, fancy=False, lock=False,

@@ -55,6 +55,7 @@ class ChunkParams:
     hist_bins: int = 4000
     hist_max: float = 1.0
     n_zones: int = 6
+    similarity: bool = True  # False: the similarity maps are not needed, only whether a cell is novel
 
 
 @dataclass(frozen=True)
@@ -156,7 +157,7 @@ def climate_chunk_reference(
 # --- the compiled loop -------------------------------------------------------------------------------
 
 def _loop(xs, kind, center, scale, clip, lo, hi, coef, knots, n_knots, transform,
-          ref, n_ref, below, inv_width, pct,
+          ref, n_ref, below, inv_width, pct, similarity,
           future, pc, pl, area, release, constraint, floor, zero, mask_novel, n_zones, hedges, hist_max,
           out_c, out_code, out_mess, out_far, out_ext, out_change, out_pct, out_zone, out_switch, v, off):
     h, w = out_c.shape
@@ -192,25 +193,30 @@ def _loop(xs, kind, center, scale, clip, lo, hi, coef, knots, n_knots, transform
                 # the number of reference values below p (searchsorted, side="left"): the count
                 # at the start of the bin before p's, then a step or two forward in the sorted
                 # sample (padded with +inf); in passes over the block, so most of it vectorises
-                for i in range(m):
-                    p = np.float64(x[i])
-                    q = p if (p > rlo and p <= rhi) else rlo  # outside the range the count is 0 or n
-                    qs[i] = q
-                    b = int((q - rlo) * iw)
-                    b = 0 if b < 0 else (nm - 1 if b > nm - 1 else b)
-                    c0 = np.int64(below[j, b])
-                    cnts[i] = c0 + np.int64(ref[j, c0] < q)
-                for i in range(m):
-                    c = cnts[i]
-                    if ref[j, c] < qs[i]:  # rare: more values close together
-                        while ref[j, c] < qs[i]:
-                            c += 1
-                        cnts[i] = c
+                # without ``similarity`` only the sign of S is needed (the extrapolated flag and the
+                # novel areas): S is negative exactly outside the range, where no count is needed
+                if similarity:
+                    for i in range(m):
+                        p = np.float64(x[i])
+                        q = p if (p > rlo and p <= rhi) else rlo  # outside the range the count is 0 or n
+                        qs[i] = q
+                        b = int((q - rlo) * iw)
+                        b = 0 if b < 0 else (nm - 1 if b > nm - 1 else b)
+                        c0 = np.int64(below[j, b])
+                        cnts[i] = c0 + np.int64(ref[j, c0] < q)
+                    for i in range(m):
+                        c = cnts[i]
+                        if ref[j, c] < qs[i]:  # rare: more values close together
+                            while ref[j, c] < qs[i]:
+                                c += 1
+                            cnts[i] = c
                 for i in range(m):
                     p = np.float64(x[i])
                     # S as in mess.similarity, with f = 100 count / n from the table
-                    f = pct[j, cnts[i]]
-                    s = 2.0 * f if f <= 50 else 2.0 * (100.0 - f)
+                    s = 0.0
+                    if similarity:
+                        f = pct[j, cnts[i]]
+                        s = 2.0 * f if f <= 50 else 2.0 * (100.0 - f)
                     if p <= rlo:  # f = 0
                         s = 100.0 * (p - rlo) / span
                     elif p > rhi:  # f = 100
@@ -389,11 +395,13 @@ def climate_chunk(
         change, pct, zone, switch = np.empty((1, 1), np.float32), np.empty((1, 1), np.float32), \
             np.empty((1, 1), np.uint8), np.empty((1, 1), np.uint8)
     _fused(xs, pm.kind, pm.center, pm.scale, pm.clip, pm.lo, pm.hi, pm.coef, pm.knots, pm.n_knots, pm.transform,
-           tab.ref, tab.n, tab.below, tab.inv_width, tab.pct,
+           tab.ref, tab.n, tab.below, tab.inv_width, tab.pct, bool(params.similarity),
            future, pc, pl, area, float(params.release), float(params.constraint), float(params.floor),
            float(params.zero), params.novel == "mask", int(params.n_zones), hedges, float(params.hist_max),
            c, code, mess, far, ext, change, pct, zone, switch, stats, off)
     maps = {"ceiling": c, "limiting": code, "similarity": mess, "least_similar": far, "extrapolated": ext}
+    if not params.similarity:  # only their signs were computed
+        del maps["similarity"], maps["least_similar"]
     if future:
         maps.update(change=change, change_pct=pct, zone=zone, switch=switch)
     return maps, stats

@@ -11,8 +11,8 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass, replace
+from typing import TYPE_CHECKING
 
-import dask.array as da
 import numpy as np
 import xarray as xr
 
@@ -22,7 +22,11 @@ from .kernels import NODATA_CODE, change_kernel, switch_kernel, zone_kernel
 from .kernels_fast import evaluate as evaluate_fast
 from .model import CeilingModel
 from .mess import check_reference, mess_kernel
+from .outputs.names import FUTURE_BOUNDS, PRESENT_BOUNDS
 from .scenarios import Climate, ProjectionOptions
+
+if TYPE_CHECKING:  # dask is imported where the lazy arrays are built, not at start-up
+    import dask.array as da
 
 __all__ = ["climate_readers", "uncertainty", "has_replicates", "PRESENT_BOUNDS", "FUTURE_BOUNDS", "open_climate", "project", "novel_rule", "with_policy", "compare", "climate_stats", "valid_counts", "StatsLayout", "model_units"]
 
@@ -123,6 +127,8 @@ def project(
     Factor codes follow each model's own factor order; 255 marks nodata (any factor missing).
     ``novel`` is the rule for cells beyond the sampled range (see :func:`with_policy`).
     """
+    import dask.array as da
+
     factors = tuple(layers)
     for m in models:
         lacking = [f for f in m.factor_names if f not in layers]
@@ -163,6 +169,8 @@ def project(
 
 def compare(present: xr.Dataset, future: xr.Dataset, *, n_factors: Sequence[int], opts: ProjectionOptions) -> xr.Dataset:
     """Change, percent change, zone and switch between present and future (lazy)."""
+    import dask.array as da
+
     p, f = present["ceiling"].data, future["ceiling"].data
 
     def changes(pb: np.ndarray, fb: np.ndarray) -> np.ndarray:
@@ -248,6 +256,8 @@ def climate_stats(present: xr.Dataset, future: xr.Dataset, cmp: xr.Dataset, area
     Summing over the first two axes gives the statistics of the whole grid (or of any group of
     blocks, which is how the writer reduces them group by group).
     """
+    import dask.array as da
+
     out = []
     for i, lay in enumerate(layouts):
         def block(pc, pl, fc, fl, z, a, nv, lay=lay):
@@ -264,14 +274,14 @@ def climate_stats(present: xr.Dataset, future: xr.Dataset, cmp: xr.Dataset, area
 
 def valid_counts(arr: da.Array) -> da.Array:
     """Number of finite cells per block, shape (n_block_rows, n_block_cols)."""
+    import dask.array as da
+
     return da.map_blocks(
         lambda a: np.array([[np.isfinite(a).sum()]], dtype=np.int64), arr,
         chunks=tuple(tuple(1 for _ in c) for c in arr.chunks), dtype=np.int64,
     )
 
 
-PRESENT_BOUNDS = ("ceiling_lower", "ceiling_upper")
-FUTURE_BOUNDS = ("ceiling_lower", "ceiling_upper", "change_lower", "change_upper", "p_release", "p_constraint")
 _FROM_KERNEL = {"ceiling_lower": "future_low", "ceiling_upper": "future_high", "change_lower": "change_low",
                 "change_upper": "change_high", "p_release": "release_probability", "p_constraint": "constraint_probability"}
 
@@ -316,6 +326,8 @@ def uncertainty(
     again with the future's: K extra layer reads per future, instead of storing B replicate
     grids of the present.
     """
+    import dask.array as da
+
     models = with_policy(models, novel)
     factors = tuple(present)
     arrays = [present[f].data for f in factors] + ([future[f].data for f in factors] if future else [])

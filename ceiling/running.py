@@ -47,11 +47,14 @@ from .kernels import NODATA_CODE
 from .kernels_climate import ChunkParams
 from .model import CeilingModel, ModelSet
 from .outputs.atomic import atomic_write_text
+from .outputs.choice import Needs, OutputChoice, computed_in_order, output_choice, similarity_needed
 from .outputs.names import (
     ENSEMBLE,
     ENSEMBLE_LAYERS,
+    FUTURE_BOUNDS,
     FUTURE_LAYERS,
     NETCDF_FILE,
+    PRESENT_BOUNDS,
     PRESENT_LAYERS,
     SUMMARY_FILE,
     TRANSITIONS_FILE,
@@ -61,8 +64,6 @@ from .outputs.names import (
 from .outputs.netcdf import NetcdfWriter, create_netcdf
 from .outputs.stream import StreamReader
 from .projection import (
-    FUTURE_BOUNDS,
-    PRESENT_BOUNDS,
     StatsLayout,
     climate_readers,
     has_replicates,
@@ -171,16 +172,18 @@ def _weighted_median(hist: np.ndarray, lay: StatsLayout) -> float:
     return float(lo + frac * (hi - lo))
 
 
-def output_bytes(grid: GridSpec, n_species: int, climates_: Sequence[Climate], *, bootstrap: bool) -> int:
-    """Upper bound of a projection's output size: every map uncompressed, twice (GeoTIFF + NetCDF)."""
+def output_bytes(grid: GridSpec, n_species: int, climates_: Sequence[Climate], *, bootstrap: bool,
+                 maps: frozenset[str] | None = None, netcdf: bool = True) -> int:
+    """Upper bound of a projection's output size: every map (of ``maps``, None: all) uncompressed,
+    twice with the NetCDF (GeoTIFF + NetCDF)."""
     def per_cell(names) -> int:
-        return sum(np.dtype(LAYER_META[n][0]).itemsize for n in names)
+        return sum(np.dtype(LAYER_META[n][0]).itemsize for n in names if maps is None or n in maps)
 
     futures = [c for c in climates_ if not c.is_present]
     ensembles = len({(c.scenario, c.period) for c in futures})
     present = per_cell(PRESENT_LAYERS + (PRESENT_BOUNDS if bootstrap else ()))
     future = per_cell(FUTURE_LAYERS + (FUTURE_BOUNDS if bootstrap else ()))
-    return int(2 * grid.width * grid.height * n_species * (present + future * len(futures) + per_cell(ENSEMBLE_LAYERS) * ensembles))
+    return int((2 if netcdf else 1) * grid.width * grid.height * n_species * (present + future * len(futures) + per_cell(ENSEMBLE_LAYERS) * ensembles))
 
 
 def run_fingerprint(cfg: RunConfig, inputs: Sequence[Path], model_path: Path | None) -> str:
@@ -210,7 +213,7 @@ def run_inputs(cfg: RunConfig, cl: Sequence[Climate], model_path: Path | None, z
     """Every file that shapes a projection's result, once each: the survey and factor layers,
     every climate's layers, the template, the mask, the zones and the model file. They are
     listed in the manifest, fingerprinted for --resume and protected from --overwrite."""
-    from .fitting import config_inputs, with_companions
+    from .companions import config_inputs, with_companions
 
     opts = projection_options(cfg)
     files = config_inputs(cfg) + _all_layer_paths(list(cl)) + derive_inputs(cfg, list(cl))
@@ -259,14 +262,22 @@ def run_projection(
     for m in ms:
         check_reference(m.reference or {}, m.factor_names, species=m.species)
     boot = has_replicates(ms)
-    check_free_space(stage, output_bytes(grid, len(ms), cl, bootstrap=boot), what="the projection's maps")
+    # what is written ([outputs]), and what is computed for it: the maps asked for and those other outputs read
+    choice = output_choice(cfg)
+    groups = list(ensemble_groups(cl[1:], opts.ensemble_min_models, warn=notes.append))
+    tables = cfg.outputs or {}
+    computed = choice.computed(Needs(futures=len(cl) > 1, ensembles=bool(groups), zones="zones" in tables,
+                                     community="community" in tables))
+    present_names = computed_in_order(PRESENT_LAYERS + (PRESENT_BOUNDS if boot else ()), computed)
+    future_names = computed_in_order(FUTURE_LAYERS + (FUTURE_BOUNDS if boot else ()), computed)
+    check_free_space(stage, output_bytes(grid, len(ms), cl, bootstrap=boot, maps=computed, netcdf=choice.netcdf),
+                     what="the projection's maps")
     policy = tuple(with_policy(ms, opts.novel))
+    similarity = similarity_needed(computed)  # else only the sign of the similarity: the extrapolated flag
     params = tuple(ChunkParams(opts.release_threshold, opts.constraint_threshold, opts.absolute_floor, opts.zero_level,
-                               opts.novel, lay.hist_bins, lay.hist_max, lay.n_zones) for lay in layouts)
+                               opts.novel, lay.hist_bins, lay.hist_max, lay.n_zones, similarity) for lay in layouts)
     rule = novel_rule(ms, opts.novel)
-    nc, nc_spec = _netcdf(stage, grid, ms, cl, opts, cfg, boot)
-    present_names = PRESENT_LAYERS + (PRESENT_BOUNDS if boot else ())
-    future_names = FUTURE_LAYERS + (FUTURE_BOUNDS if boot else ())
+    nc, nc_spec = _netcdf(stage, grid, ms, cl, opts, cfg, boot, choice)
     # the present's ceiling and limiting factor stay uncompressed until the run ends: every
     # future reads them back by copying, not decoding (removed here in any case)
     kept: dict[tuple[int, str], Path | None] = (
@@ -277,11 +288,13 @@ def run_projection(
         cleanup.callback(lambda: [Path(p).unlink(missing_ok=True) for p in kept.values() if p is not None])
         try:
             t0 = time.perf_counter()
-            nc.write_areas(lambda r, c: window_areas(grid, r, c))
+            if nc is not None:
+                nc.write_areas(lambda r, c: window_areas(grid, r, c))
             readers = tuple((f, opened[0][f]) for f in used)
             plan = ClimatePlan(grid, readers, policy, params,
                                map_specs(len(ms), present_names, grid, opts.chunk, netcdf=nc_spec(None)),
-                               mask=None if mask is None else mask.data, bootstrap=opts if boot else None, nc_chunk=nc.chunk_shape)
+                               mask=None if mask is None else mask.data, bootstrap=opts if boot else None,
+                               nc_chunk=nc.chunk_shape if nc is not None else (0, 0))
             w, vec = write_climate(comp, stage, grid, cl[0], plan, species=species, factor_lists=factor_lists,
                                    chunk=opts.chunk, used=used, n_stats=len(ms), nc=nc, novel=rule, say=progress,
                                    timings=work, deflate_level=opts.deflate_level, keep=kept or None)
@@ -299,7 +312,7 @@ def run_projection(
                                    map_specs(len(ms), future_names, grid, opts.chunk, netcdf=nc_spec(j - 2)),
                                    present=back, mask=None if mask is None else mask.data,
                                    bootstrap=opts if boot else None, boot_readers=readers if boot else None,
-                                   nc_chunk=nc.chunk_shape)
+                                   nc_chunk=nc.chunk_shape if nc is not None else (0, 0))
                 w, vec = write_climate(comp, stage, grid, c, plan, species=species, factor_lists=factor_lists,
                                        chunk=opts.chunk, used=used, n_stats=len(ms), nc=nc, novel=rule, say=progress,
                                        timings=work, deflate_level=opts.deflate_level)
@@ -309,14 +322,16 @@ def run_projection(
                 trans += t
                 timings["/".join(c.key)] = time.perf_counter() - t0
                 say(f"[{j}/{len(cl)}] {c.label}: {len(w)} files in {timings['/'.join(c.key)]:.1f} s")
-            written.append(nc.close())  # its chunks went in climate by climate
+            if nc is not None:
+                written.append(nc.close())  # its chunks went in climate by climate
         except BaseException:
-            nc.discard()
+            if nc is not None:
+                nc.discard()
             raise
-        for sc, pe, members, missing in ensemble_groups(cl[1:], opts.ensemble_min_models, warn=notes.append):
+        for sc, pe, members, missing in groups:
             t0 = time.perf_counter()
             ens = Climate(sc, ENSEMBLE, pe, {})
-            plan = _ensemble_plan(stage, grid, ms, back, members, opts)
+            plan = _ensemble_plan(stage, grid, ms, back, members, opts, computed_in_order(ENSEMBLE_LAYERS, computed))
             w, vec = write_climate(comp, stage, grid, ens, plan, species=species, factor_lists=factor_lists,
                                    chunk=opts.chunk, n_stats=len(ms), novel=rule, ensemble=True, say=progress,
                                    timings=work, deflate_level=opts.deflate_level)
@@ -342,9 +357,10 @@ def _mask(opts: ProjectionOptions, grid: GridSpec, cfg: RunConfig) -> xr.DataArr
 
 
 def _netcdf(stage: Path, grid: GridSpec, ms: list[CeilingModel], cl: list[Climate], opts: ProjectionOptions,
-            cfg: RunConfig, boot: bool) -> tuple[NetcdfWriter, Callable[[int | None], Callable]]:
-    """Lay out the run's NetCDF; return its writer and, per climate (None: the present; j: the
-    j-th future), the function that names each map's variable, index and code recoding."""
+            cfg: RunConfig, boot: bool, choice: OutputChoice) -> tuple[NetcdfWriter | None, Callable[[int | None], Callable]]:
+    """Lay out the run's NetCDF (the maps asked for; None when it is not asked for or would hold
+    no map); return its writer and, per climate (None: the present; j: the j-th future), the
+    function that names each map's variable, index and code recoding (None: not in the NetCDF)."""
     # Each species' GeoTIFF codes index that model's own factor list (m.factor_names, the
     # factors in its minimum). When factor screening leaves species with different lists, the
     # NetCDF's codes index the config's factor list instead, remapped here; with one shared
@@ -365,8 +381,11 @@ def _netcdf(stage: Path, grid: GridSpec, ms: list[CeilingModel], cl: list[Climat
                 for b, gb in enumerate(where):
                     sw[a * k + b] = ga * big + gb
             luts[i], switch_luts[i] = lut, sw
-    variables = netcdf_variables(PRESENT_LAYERS + (PRESENT_BOUNDS if boot else ()),
-                                 FUTURE_LAYERS + (FUTURE_BOUNDS if boot else ()) if len(cl) > 1 else (), factors)
+    present = [n for n in PRESENT_LAYERS + (PRESENT_BOUNDS if boot else ()) if choice.in_netcdf(n)]
+    future = [n for n in FUTURE_LAYERS + (FUTURE_BOUNDS if boot else ()) if choice.in_netcdf(n)] if len(cl) > 1 else []
+    if not present and not future:
+        return None, lambda j: (lambda i, layer: None)
+    variables = netcdf_variables(present, future, factors)
     writer = create_netcdf(
         stage / NETCDF_FILE, grid=grid, species=[m.species for m in ms], futures=[c.key for c in cl[1:]],
         variables=variables, chunk=opts.chunk,
@@ -376,6 +395,8 @@ def _netcdf(stage: Path, grid: GridSpec, ms: list[CeilingModel], cl: list[Climat
 
     def spec(j: int | None) -> Callable:
         def one(i: int, layer: str):
+            if not choice.in_netcdf(layer):
+                return None
             lut = switch_luts[i] if layer == "switch" else luts[i] if layer in ("limiting", "least_similar") else None
             if j is None:
                 return f"{layer}_present", (i,), lut
@@ -434,7 +455,7 @@ def project_to_folder(
     try:
         return _project_to_folder(cfg, out, cl, inputs, checksums, model_path=model_path, overwrite=overwrite,
                                   workers=workers, address=address, threads=threads, progress=progress, resume=resume,
-                                  zones_in=zones_in, community_opts=community_opts, t_start=t_start)
+                                  zones_in=zones_in, community_opts=community_opts, t_start=t_start, given=given)
     finally:
         checksums.close(finish=False)
 
@@ -442,9 +463,8 @@ def project_to_folder(
 def _project_to_folder(cfg: RunConfig, out: Path, cl: list[Climate], inputs: list[Path], checksums: Any, *,
                        model_path: Path | None, overwrite: bool, workers: int | None, address: str | None,
                        threads: int | None, progress: Callable[[str], None] | None, resume: bool, zones_in: Any,
-                       community_opts: Any, t_start: float) -> RunResult:
+                       community_opts: Any, t_start: float, given: Path) -> RunResult:
     from .community import build_community
-    from .fitting import fit_config, write_fit
     from .model import load_models
     from .outputs.atomic import Prefetch
     from .outputs.folder import staged_folder
@@ -457,6 +477,8 @@ def _project_to_folder(cfg: RunConfig, out: Path, cl: list[Climate], inputs: lis
         models = load_models(model_path)
         path_parts("species", models.species, where=str(model_path))
     else:
+        from .fitting import fit_config
+
         fit_run = fit_config(cfg)
         models = fit_run.models
         if progress:
@@ -465,10 +487,15 @@ def _project_to_folder(cfg: RunConfig, out: Path, cl: list[Climate], inputs: lis
     with staged_folder(out, overwrite=overwrite, resume=resume, fingerprint=run_fingerprint(cfg, inputs, model_path)) as stage, \
             contextlib.ExitStack() as cleanup:
         if fit_run is not None:
+            from .fitting import write_fit
+
             write_fit(fit_run, stage)
         else:
             models.save(stage / MODEL_FILE)
         run = run_projection(cfg, models, stage, workers=workers, address=address, threads=threads, progress=progress)
+        choice = output_choice(cfg)
+        unasked = set(choice.unasked(run.written))  # maps computed for other outputs only, removed below
+        run.written = [p for p in run.written if p not in unasked]
         # the NetCDF's and the tables' checksums, read beside the regions, community layers and figures
         sums = Prefetch(run.written)
         cleanup.callback(sums.close, finish=False)
@@ -479,20 +506,23 @@ def _project_to_folder(cfg: RunConfig, out: Path, cl: list[Climate], inputs: lis
                 stage, species=[m.species for m in models], climates=[c.key for c in run.climates],
                 richness_threshold=community_opts.richness_threshold, chunk=projection_options(cfg).chunk,
                 threads=threads, progress=progress).seconds
-        # the STAC catalogue of the folder (collection.json, stac/), before the report and the manifest that list it
         from .outputs.stac import write_catalogue
         from .report import REPORT_FILE
-        write_catalogue(stage, title=cfg.name, species_factors={m.species: m.factor_names for m in models},
-                        to_come=(REPORT_FILE, MANIFEST_FILE))
-        # figures and report.html (ceiling/maps.py, ceiling/report/), before the manifest that lists them
-        from .maps import make_figures
-        from .report import build_report
         t_report = time.perf_counter()
-        n_figures = len(make_figures(stage, workers=threads))  # --threads caps the figure processes too
-        build_report(stage, config=cfg.source, inputs=inputs, folder=given)  # named as given, not the staging folder
-        run.timings["figures_and_report"] = time.perf_counter() - t_report
-        if progress:
-            progress(f"wrote {n_figures} figures and report.html in {run.timings['figures_and_report']:.1f} s")
+        n_figures = 0
+        if choice.report:  # the figures (ceiling/maps.py) draw every map: before the maps not asked for go
+            from .maps import make_figures
+            n_figures = len(make_figures(stage, workers=threads))  # --threads caps the figure processes too
+        _remove(unasked)
+        # the STAC catalogue of the folder (collection.json, stac/), before the report and the manifest that list it
+        write_catalogue(stage, title=cfg.name, species_factors={m.species: m.factor_names for m in models},
+                        to_come=((REPORT_FILE,) if choice.report else ()) + (MANIFEST_FILE,))
+        if choice.report:  # report.html (ceiling/report/), before the manifest that lists it
+            from .report import build_report
+            build_report(stage, config=cfg.source, inputs=inputs, folder=given)  # named as given, not the staging folder
+            run.timings["figures_and_report"] = time.perf_counter() - t_report
+            if progress:
+                progress(f"wrote {n_figures} figures and report.html in {run.timings['figures_and_report']:.1f} s")
         checksums.close()
         sums.close()
         seconds = time.perf_counter() - t_start
@@ -510,6 +540,17 @@ def _project_to_folder(cfg: RunConfig, out: Path, cl: list[Climate], inputs: lis
             },
         )
     return RunResult(Path(out), run, fit_run, seconds)
+
+
+def _remove(files: set[Path]) -> None:
+    """Remove map files computed only for other outputs, and the folders they leave empty."""
+    for p in files:
+        p.unlink(missing_ok=True)
+    for d in sorted({p.parent for p in files}, key=lambda d: len(d.parts), reverse=True):
+        with contextlib.suppress(OSError):  # not empty (other maps remain): kept
+            while True:
+                d.rmdir()
+                d = d.parent
 
 
 def _sha(p: Path) -> str:
@@ -541,12 +582,12 @@ def ensemble_groups(futures: Sequence[Climate], min_models: int, *, warn: Callab
 
 
 def _ensemble_plan(stage: Path, grid: GridSpec, ms: list[CeilingModel], back, members: list[Climate],
-                   opts: ProjectionOptions) -> EnsemblePlan:
+                   opts: ProjectionOptions, names: Sequence[str]) -> EnsemblePlan:
     readers = tuple(tuple((readback_reader(stage / layer_path(m.species, c.key, "ceiling"), grid),
                            readback_reader(stage / layer_path(m.species, c.key, "limiting"), grid)) for c in members)
                     for m in ms)
     return EnsemblePlan(grid, tuple(b[0] for b in back), readers, tuple(len(m.factors) for m in ms), opts,
-                        map_specs(len(ms), ENSEMBLE_LAYERS, grid, opts.chunk))
+                        map_specs(len(ms), names, grid, opts.chunk))
 
 
 def _ensemble_rows(ms, ens: Climate, vectors, members, missing) -> list[dict]:

@@ -53,6 +53,8 @@ def same_units(a: str, b: str) -> bool:
 @lru_cache(maxsize=256)
 def linear_conversion(source: str, target: str, *, where: str) -> tuple[float, float]:
     """(scale, offset) with ``value_in_target = value_in_source * scale + offset``."""
+    if str(source).strip() == str(target).strip():  # the same units: no conversion (and no unit registry to load)
+        return 1.0, 0.0
     ureg = _registry()
     su, tu = _parse(source, where), _parse(target, where)
     if su == tu:

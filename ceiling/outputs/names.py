@@ -20,6 +20,7 @@ __all__ = [
     "MANIFEST_FILE", "PRESENT_LAYERS", "FUTURE_LAYERS", "ENSEMBLE_LAYERS", "ENSEMBLE", "fit_figure_name", "fit_panel_name", "safe_part",
     "climate_dir", "layer_path", "aux_path", "style_path", "STAC_DIR", "STAC_ROOT_FILE", "DERIVED_DIR", "stac_item_path",
     "COMMUNITY_DIR", "RUN_FOLDERS", "FILE_SUFFIXES", "RESERVED", "path_parts", "check_distinct",
+    "PRESENT_BOUNDS", "FUTURE_BOUNDS", "WITHOUT_SIMILARITY", "MAP_NAMES",
 ]
 
 MODEL_FILE = "model.json"
@@ -33,6 +34,14 @@ PRESENT_LAYERS = ("ceiling", "limiting", "similarity", "least_similar", "extrapo
 FUTURE_LAYERS = ("ceiling", "change", "change_pct", "limiting", "zone", "switch", "similarity", "least_similar", "extrapolated")
 ENSEMBLE_LAYERS = ("median_ceiling", "mean_ceiling", "median_change", "mean_change", "change_min", "change_max",
                    "change_iqr", "agreement", "robustness", "zone", "limiting", "limiting_share")
+# bootstrap bounds, written beside the maps when the model file carries replicates
+PRESENT_BOUNDS = ("ceiling_lower", "ceiling_upper")
+FUTURE_BOUNDS = ("ceiling_lower", "ceiling_upper", "change_lower", "change_upper", "p_release", "p_constraint")
+# the projected maps made without the full similarity computation (MESS): the extrapolated flag
+# needs only each factor's range; a run that writes any other projected map computes it in full
+WITHOUT_SIMILARITY = ("ceiling", "limiting", "extrapolated", "change", "change_pct", "zone", "switch")
+# every map name a run can write, the names [outputs] maps chooses from
+MAP_NAMES = tuple(dict.fromkeys(PRESENT_LAYERS + FUTURE_LAYERS + ENSEMBLE_LAYERS + PRESENT_BOUNDS + FUTURE_BOUNDS))
 ENSEMBLE = "ensemble"  # the climate-model name under which ensemble maps are written
 COMMUNITY_DIR = "community"  # the community layers, beside the species folders
 STAC_DIR = "stac"  # the STAC catalogue's items (ceiling/outputs/stac.py)

@@ -97,10 +97,14 @@ class ClimateFolder:
 
 def _climate_folders(root: Path, species: Sequence[str]) -> list[ClimateFolder]:
     out = []
-    for tif in sorted(root.glob("*/**/ceiling.tif")) + sorted(root.glob("*/**/median_ceiling.tif")):
+    firsts: dict[Path, Path] = {}  # each folder of maps by its first map (a lean run may lack the ceiling)
+    for tif in sorted(root.glob("*/**/*.tif")):
+        if not tif.name.startswith("."):
+            firsts.setdefault(tif.parent, tif)
+    for tif in firsts.values():
         with rasterio.open(tif) as src:
             tags = src.tags()
-        if tags.get("species") in species:
+        if tags.get("species") in species and tags.get("layer"):
             out.append(ClimateFolder(tif.parent, tags["species"], tags.get("scenario", ""),
                                      tags.get("climate_model", ""), tags.get("period", "")))
     return sorted(out, key=lambda c: (list(species).index(c.species), c.scenario != "present", c.item_id))
