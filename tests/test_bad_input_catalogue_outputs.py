@@ -494,7 +494,7 @@ def test_resume_after_the_mask_changed_and_out_a_link(tmp_path, monkeypatch):
         raise KeyboardInterrupt
 
     with monkeypatch.context() as m:
-        m.setattr(ceiling.running, "ensemble_groups", interrupt)
+        m.setattr(ceiling.running, "ProjectionRun", interrupt)  # built once every climate is written
         with pytest.raises(KeyboardInterrupt):
             project_to_folder(load_config(cfg), link, model_path=c.model, threads=2)
     assert any((tmp_path / ".partial-results").glob(".done-*.json"))  # present and future were done
