@@ -18,13 +18,12 @@ is the monthly change-factor method (:mod:`ceiling.derive.stage`).
 
 from __future__ import annotations
 
-import logging
 import warnings
 
 import xarray as xr
 
 from ..errors import DataError
-from .library import xclim
+from .library import xclim, xsdba
 from .series import VARIABLES
 
 __all__ = ["DAILY_INDICES", "quantile_mapping", "daily_index"]
@@ -35,19 +34,12 @@ DAILY_INDICES = {"frost_days": "tasmin", "growing_degree_days": "tas"}
 def quantile_mapping(ref: xr.DataArray, hist: xr.DataArray, sim: xr.DataArray, *, variable: str,
                      nquantiles: int = 50) -> xr.DataArray:
     """``sim`` adjusted by empirical quantile mapping trained on ``hist`` against ``ref`` (daily, per month)."""
-    log = logging.getLogger("pint")
-    level = log.level
-    log.setLevel(logging.ERROR)
-    try:
-        import xsdba
-    finally:
-        log.setLevel(level)
     if variable not in VARIABLES:
         raise DataError(f"quantile mapping: unknown variable '{variable}'; use one of {', '.join(VARIABLES)}")
     kind = "+" if VARIABLES[variable] == "temperature" else "*"
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        qm = xsdba.EmpiricalQuantileMapping.train(ref, hist, nquantiles=nquantiles, group="time.month", kind=kind)
+        qm = xsdba().EmpiricalQuantileMapping.train(ref, hist, nquantiles=nquantiles, group="time.month", kind=kind)
         return qm.adjust(sim, extrapolation="constant", interp="nearest")
 
 
